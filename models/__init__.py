@@ -1,0 +1,1 @@
+"""shiftsieve.models: pure computation (numpy in, numpy out)."""

@@ -1,0 +1,1 @@
+"""shiftsieve.stream: I/O around the models: sources, decoding, replay, CLI."""
