@@ -1,2 +1,95 @@
-def main() -> int:
-    return 0
+"""The ``shiftsieve`` command.
+
+    shiftsieve demo [--scenario NAME]                 replay a bundled incident, print the alerts
+    shiftsieve replay INPUT --events OUT.jsonl [--config FILE] [--dead-letter FILE]
+    shiftsieve evaluate EVENTS LABELS [--vectors N] [--json]
+    shiftsieve config check [FILE]
+
+User mistakes (missing files, bad configuration, unusable input) end with a
+one-line ``shiftsieve: error: ...`` on stderr and exit status 2, never a traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+import orjson
+
+from .config import ConfigError, load_config, render
+from .evaluate import EvaluationError, evaluate, format_table, load_events, load_labels
+from .readers import InputError
+from .replay import replay
+
+EXIT_USAGE = 2
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="shiftsieve",
+                                     description="Streaming sparse-change detector for infrastructure telemetry.")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    demo = sub.add_parser("demo", help="replay a bundled incident and print its alerts (no broker needed)")
+    demo.add_argument("--scenario", default="multi_shift",
+                      help="bundled incident to replay (default: multi_shift; see --list)")
+    demo.add_argument("--list", action="store_true", help="list the bundled incidents and exit")
+    demo.add_argument("--events", metavar="FILE", help="also write the alert events as JSON lines")
+    demo.add_argument("--config", metavar="FILE", help="TOML configuration")
+
+    rep = sub.add_parser("replay", help="run a recorded .jsonl, .jsonl.gz or .csv file through the detector")
+    rep.add_argument("input", metavar="INPUT")
+    rep.add_argument("--events", metavar="OUT.jsonl", required=True, help="alert events, one JSON per line")
+    rep.add_argument("--config", metavar="FILE", help="TOML configuration")
+    rep.add_argument("--dead-letter", metavar="FILE", help="write rejected lines here with line number and reason")
+    rep.add_argument("--quiet", action="store_true", help="no progress bar and no summary")
+
+    ev = sub.add_parser("evaluate", help="score alert events against a labels file")
+    ev.add_argument("events", metavar="EVENTS")
+    ev.add_argument("labels", metavar="LABELS")
+    ev.add_argument("--vectors", type=int, help="vectors in the replayed input (default: from the labels file)")
+    ev.add_argument("--json", action="store_true", help="print the figures as JSON")
+
+    cfg = sub.add_parser("config", help="configuration tools")
+    cfg_sub = cfg.add_subparsers(dest="config_command", required=True, metavar="ACTION")
+    check = cfg_sub.add_parser("check", help="validate a TOML file and print the effective values")
+    check.add_argument("file", nargs="?", metavar="FILE")
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = _parser().parse_args(argv)
+    try:
+        if args.command == "demo":
+            from .demo import list_scenarios, run_demo
+            if args.list:
+                print(list_scenarios())
+                return 0
+            return run_demo(args.scenario, load_config(args.config), events_path=args.events)
+        if args.command == "replay":
+            summary = replay(args.input, load_config(args.config), events_path=args.events,
+                             dead_letter_path=args.dead_letter, progress=not args.quiet)
+            if not args.quiet:
+                print(f"shiftsieve: {summary.format()}", file=sys.stderr)
+            return 0
+        if args.command == "evaluate":
+            labels = load_labels(args.labels)
+            result = evaluate(load_events(args.events), labels, vectors=args.vectors)
+            print(orjson.dumps(result.to_dict(), option=orjson.OPT_INDENT_2).decode() if args.json
+                  else format_table(result))
+            return 0
+        if args.command == "config":
+            print(render(load_config(args.file)), end="")
+            return 0
+    except (ConfigError, InputError, EvaluationError) as exc:
+        print(f"shiftsieve: error: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    except OSError as exc:   # e.g. the events file cannot be created
+        print(f"shiftsieve: error: {exc.strerror or exc}: {exc.filename or ''}".rstrip(": "), file=sys.stderr)
+        return EXIT_USAGE
+    except KeyboardInterrupt:
+        return 130
+    return EXIT_USAGE
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,248 @@
+"""Decision layer: per-metric alert states and per-entity incidents.
+
+Each metric of an entity moves through ``quiet -> pending -> firing`` and back:
+
+- a sample is *active* when the metric's sparse shift is non-zero;
+- ``pending -> firing`` needs ``confirm_k`` active samples among the last
+  ``confirm_m`` (so a one-sample spike never fires with the defaults);
+- ``firing -> quiet`` (resolved) needs ``clear_after`` consecutive samples whose
+  statistic is below ``clear_sigma`` — a lower bar than the firing threshold, so
+  a shift hovering at the threshold does not flap (hysteresis);
+- a metric still firing after ``adapt_after`` samples is *adapted*: the caller
+  accepts its shift as the new normal and it returns to quiet.
+
+Metrics that fire while an incident is open on the entity join it; the incident
+closes when none of its metrics is firing.  The tracker works on arrays, loops
+only over samples in which something is happening, and over just those metrics.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+QUIET, PENDING, FIRING = 0, 1, 2
+
+
+@dataclass(frozen=True)
+class DecisionConfig:
+    """Confirmation, hysteresis and adaptation settings (in samples and residual sigmas)."""
+
+    confirm_k: int = 3
+    confirm_m: int = 5
+    clear_sigma: float = 2.0
+    clear_after: int = 5
+    adapt_after: int = 0  # 0 = never adapt
+
+    def __post_init__(self) -> None:
+        if not 1 <= self.confirm_m <= 63:
+            raise ValueError(f"confirm_m must be in 1..63, got {self.confirm_m}")
+        if not 1 <= self.confirm_k <= self.confirm_m:
+            raise ValueError(f"confirm_k must be in 1..confirm_m ({self.confirm_m}), got {self.confirm_k}")
+        if not self.clear_sigma >= 0:
+            raise ValueError(f"clear_sigma must be >= 0, got {self.clear_sigma}")
+        if self.clear_after < 1:
+            raise ValueError(f"clear_after must be >= 1, got {self.clear_after}")
+        if self.adapt_after < 0:
+            raise ValueError(f"adapt_after must be >= 0 (0 = never), got {self.adapt_after}")
+
+
+@dataclass(frozen=True)
+class Transition:
+    """Something people should hear about, at batch row ``row``.
+
+    ``kind`` is ``"firing"`` (incident onset or metrics joining it), ``"adapted"``
+    (shift accepted as the new normal) or ``"resolved"`` (the incident closed).
+    ``shift``, ``value`` and ``expected`` are per listed metric: the current sample
+    for firing and adapted, the incident peak for resolved.
+    """
+
+    kind: str
+    row: int
+    onset_ts: float
+    metrics: np.ndarray
+    shift: np.ndarray
+    value: np.ndarray
+    expected: np.ndarray
+    onset: bool = False
+
+
+@dataclass
+class _Incident:
+    onset_ts: float
+    members: set[int] = field(default_factory=set)
+    resolved: set[int] = field(default_factory=set)
+
+
+class AlertTracker:
+    """Per-metric alert state for one entity.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> tracker = AlertTracker(2, DecisionConfig(confirm_k=2, confirm_m=3, clear_after=2))
+    >>> active = np.array([[0, 0], [1, 0], [1, 0], [0, 0], [0, 0]], bool)
+    >>> shift = np.where(active, 6.0, 0.0)
+    >>> out = tracker.step(active, shift, shift, shift, shift, np.arange(5.0))
+    >>> [(t.kind, t.row, t.metrics.tolist()) for t in out]
+    [('firing', 2, [0]), ('resolved', 4, [0])]
+    """
+
+    _PER_METRIC = ("state", "history", "below", "firing_for", "peak_shift", "peak_value", "peak_expected")
+
+    def __init__(self, n_metrics: int, config: DecisionConfig = DecisionConfig()) -> None:
+        self.config = config
+        self._window_mask = np.uint64((1 << config.confirm_m) - 1)
+        self.state = np.zeros(n_metrics, dtype=np.int8)
+        self.history = np.zeros(n_metrics, dtype=np.uint64)
+        self.below = np.zeros(n_metrics, dtype=np.int64)
+        self.firing_for = np.zeros(n_metrics, dtype=np.int64)
+        self.peak_shift = np.zeros(n_metrics)
+        self.peak_value = np.zeros(n_metrics)
+        self.peak_expected = np.zeros(n_metrics)
+        self.incident: _Incident | None = None
+
+    @property
+    def n_metrics(self) -> int:
+        return self.state.size
+
+    def step(self, active: np.ndarray, shift: np.ndarray, stat: np.ndarray, value: np.ndarray,
+             expected: np.ndarray, ts: np.ndarray) -> list[Transition]:
+        """Advance over a batch (B, n) in sample order; returns the transitions in order.
+
+        ``shift`` is the reported (debiased) shift in residual sigmas, ``stat`` the
+        statistic compared with ``clear_sigma``; ``value``/``expected`` ride along
+        into the transitions.
+        """
+        active = np.asarray(active, dtype=bool)
+        B = active.shape[0]
+        cfg = self.config
+        # Window counts ignore resets inside the batch, so they bound the true counts from above:
+        # a metric that never reaches confirm_k and is not firing cannot change anything but its
+        # history and its quiet/pending flag, which are computed for all such metrics at once.
+        can_fire = self._window_counts(active) >= cfg.confirm_k
+        hot_mask = (self.state == FIRING) | can_fire.any(axis=0)
+        self._advance_quietly(active, ~hot_mask)
+        hot = np.flatnonzero(hot_mask)
+        if hot.size == 0:
+            return []
+        can_fire = can_fire[:, hot]
+        rows_that_can_fire = np.flatnonzero(can_fire.any(axis=1))
+        last = int(rows_that_can_fire[-1]) if rows_that_can_fire.size else -1
+        first = 0 if (self.state[hot] == FIRING).any() else int(rows_that_can_fire[0])
+        self._advance_quietly(active[:first], hot_mask)
+        out: list[Transition] = []
+        muted = np.zeros(hot.size, dtype=bool)  # adapted this batch: later rows still show the old shift
+        for row in range(first, B):
+            if row > last and not (self.state[hot] == FIRING).any():
+                rest = active[row:].copy()   # nothing more can happen in this batch
+                rest[:, hot[muted]] = False
+                self._advance_quietly(rest, hot_mask)
+                break
+            a = active[row, hot] & ~muted
+            hist = ((self.history[hot] << np.uint64(1)) | a.astype(np.uint64)) & self._window_mask
+            state = self.state[hot]
+            count = np.bitwise_count(hist)
+            fire = (state != FIRING) & (count >= cfg.confirm_k)
+            firing = state == FIRING
+            low = np.abs(stat[row, hot]) < cfg.clear_sigma
+            below = np.where(firing & low, self.below[hot] + 1, 0)
+            firing_for = np.where(firing, self.firing_for[hot] + 1, 0)
+            clear = firing & (below >= cfg.clear_after)
+            adapt = firing & ~clear & (cfg.adapt_after > 0) & (firing_for >= cfg.adapt_after)
+            ended = clear | adapt
+            self._track_peaks(hot, firing | fire, shift[row], value[row], expected[row])
+            self.history[hot] = np.where(ended, np.uint64(0), hist)
+            self.state[hot] = np.where(fire | (firing & ~ended), FIRING, np.where(ended | (hist == 0), QUIET, PENDING))
+            self.below[hot] = np.where(fire, 0, below)
+            self.firing_for[hot] = np.where(fire, 0, firing_for)
+            muted |= adapt
+            out.extend(self._incident_transitions(row, float(ts[row]), hot[fire], hot[clear],
+                                                  hot[adapt], shift[row], value[row], expected[row]))
+        return out
+
+    def _window_counts(self, active: np.ndarray) -> np.ndarray:
+        """Active samples among the last ``confirm_m`` at every row (B, n), history included."""
+        m = self.config.confirm_m
+        B = active.shape[0]
+        cum = np.zeros((B + 1, active.shape[1]), dtype=np.int64)
+        np.cumsum(active, axis=0, out=cum[1:])
+        rows = np.arange(B)
+        counts = cum[rows + 1] - cum[np.maximum(rows + 1 - m, 0)]
+        # Row t also counts the newest m - 1 - t samples of the history (bit 0 = the previous sample).
+        head = min(m - 1, B)
+        if head:
+            bits = (np.uint64(1) << (m - 1 - np.arange(head)).astype(np.uint64)) - np.uint64(1)
+            counts[:head] += np.bitwise_count(self.history[None, :] & bits[:, None])
+        return counts
+
+    def _advance_quietly(self, active: np.ndarray, metrics: np.ndarray) -> None:
+        """Age the history of ``metrics`` (bool mask) over ``active`` rows in which none can fire."""
+        L = active.shape[0]
+        if L == 0 or not metrics.any():
+            return
+        tail = active[-min(L, 63):, metrics][::-1].astype(np.uint64)
+        bits = np.bitwise_or.reduce(tail << np.arange(tail.shape[0], dtype=np.uint64)[:, None], axis=0)
+        history = (self._shifted(self.history[metrics], L) | bits) & self._window_mask
+        self.history[metrics] = history
+        self.state[metrics] = np.where(history != 0, PENDING, QUIET)
+
+    def _shifted(self, history: np.ndarray, samples: int) -> np.ndarray:
+        """History after ``samples`` inactive samples (numpy shifts by >= 64 bits are undefined)."""
+        if samples >= 64:
+            return np.zeros_like(history)
+        return (history << np.uint64(samples)) & self._window_mask
+
+    def _track_peaks(self, busy: np.ndarray, live: np.ndarray, shift: np.ndarray, value: np.ndarray,
+                     expected: np.ndarray) -> None:
+        idx = busy[live]
+        fresh = self.state[idx] != FIRING
+        higher = fresh | (np.abs(shift[idx]) > np.abs(self.peak_shift[idx]))
+        idx = idx[higher]
+        self.peak_shift[idx] = shift[idx]
+        self.peak_value[idx] = value[idx]
+        self.peak_expected[idx] = expected[idx]
+
+    def _incident_transitions(self, row: int, ts: float, fired: np.ndarray, cleared: np.ndarray,
+                              adapted: np.ndarray, shift: np.ndarray, value: np.ndarray,
+                              expected: np.ndarray) -> list[Transition]:
+        out: list[Transition] = []
+        if fired.size:
+            onset = self.incident is None
+            if onset:
+                self.incident = _Incident(onset_ts=ts)
+            self.incident.members.update(fired.tolist())
+            out.append(Transition("firing", row, self.incident.onset_ts, fired, shift[fired], value[fired],
+                                  expected[fired], onset=onset))
+        if self.incident is None:
+            return out
+        if adapted.size:
+            self.incident.members.difference_update(adapted.tolist())
+            out.append(Transition("adapted", row, self.incident.onset_ts, adapted, shift[adapted],
+                                  value[adapted], expected[adapted]))
+        if cleared.size:
+            self.incident.members.difference_update(cleared.tolist())
+            self.incident.resolved.update(cleared.tolist())
+        if not self.incident.members:
+            done = np.array(sorted(self.incident.resolved), dtype=np.int64)
+            if done.size:
+                out.append(Transition("resolved", row, self.incident.onset_ts, done, self.peak_shift[done],
+                                      self.peak_value[done], self.peak_expected[done]))
+            self.incident = None
+        return out
+
+    def extend(self, k: int) -> None:
+        """Append ``k`` quiet metrics."""
+        for name in self._PER_METRIC:
+            arr = getattr(self, name)
+            setattr(self, name, np.concatenate([arr, np.zeros(k, dtype=arr.dtype)]))
+
+    def keep(self, index: np.ndarray) -> None:
+        """Retain only the metrics at ``index``; callers drop only quiet metrics."""
+        for name in self._PER_METRIC:
+            setattr(self, name, getattr(self, name)[index])
+        if self.incident is not None:
+            renumber = {int(old): new for new, old in enumerate(index)}
+            self.incident.members = {renumber[m] for m in self.incident.members}
+            self.incident.resolved = {renumber[m] for m in self.incident.resolved if m in renumber}

@@ -1,0 +1,304 @@
+"""One entity's detector: normalise -> baseline -> sparse shift -> decide, on micro-batches.
+
+For a batch ``X`` (B, n) of raw metric vectors (NaN = missing) the detector
+
+1. normalises each metric robustly (:mod:`.normaliser`),
+2. solves the warm-started projected LASSO
+   ``min_s 1/2 ||P (z - Phi s)||^2 + lambda sum_j d_j |s_j|`` with ``P = I - U U^T``
+   (:mod:`.lasso`), where ``U`` is the tracked baseline (:mod:`.subspace`),
+   ``d_j`` the metric's robust residual scale and ``lambda`` the two-sided
+   Gaussian quantile of the target false-alarm probability,
+3. refits the support by least squares for unbiased, signed magnitudes in
+   residual sigmas, and the baseline's expected value for every metric,
+4. feeds the decision layer (:mod:`.decision`), and
+5. learns: the baseline, the normaliser and the residual scales are updated
+   with the *cleaned* vectors only, so a fault never teaches the baseline.
+
+Until ``warmup`` vectors have arrived it only collects them.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+from scipy.special import ndtri
+
+from .decision import AlertTracker, DecisionConfig, Transition
+from .dictionary import build_dictionary, column_scales, metric_effect
+from .lasso import debias, projected_residual, solve_projected_lasso
+from .normaliser import MAD_TO_SIGMA, RobustNormaliser, decay_for_halflife
+from .subspace import SubspaceTracker, impute_low_rank
+
+
+def threshold_for(false_alarm: float) -> float:
+    """Two-sided Gaussian quantile ``lambda`` with ``P(|N(0,1)| > lambda) = false_alarm``."""
+    if not 0.0 < false_alarm < 1.0:
+        raise ValueError(f"false_alarm must be in (0, 1), got {false_alarm!r}")
+    return float(-ndtri(false_alarm / 2.0))
+
+
+def winsorised_second_moment(c: float) -> float:
+    """``E[min(X^2, c^2)]`` for standard normal X (Huber's proposal-2 consistency factor).
+
+    The LASSO residual of a metric is clipped at ``lambda d`` by the optimality
+    conditions, so its mean square underestimates ``d^2`` by this factor.
+    """
+    tail = math.erfc(c / math.sqrt(2.0))  # P(|X| > c)
+    density = math.exp(-0.5 * c * c) / math.sqrt(2.0 * math.pi)
+    return (1.0 - tail) - 2.0 * c * density + c * c * tail
+
+
+@dataclass(frozen=True)
+class DetectorConfig:
+    """Model settings for one entity; every count is in samples."""
+
+    warmup: int = 200
+    rank: int | None = None
+    energy: float = 0.9
+    max_rank: int = 8
+    baseline_halflife: float = 1440.0
+    normaliser_halflife: float = 1440.0
+    scale_halflife: float = 720.0
+    false_alarm: float = 1e-3
+    group_weight: float = 1.0
+    min_samples: int = 30
+    tol: float = 1e-4
+    max_iter: int = 300
+    decision: DecisionConfig = field(default_factory=DecisionConfig)
+
+    def __post_init__(self) -> None:
+        if self.warmup < 10:
+            raise ValueError(f"warmup must be >= 10 samples, got {self.warmup}")
+        if self.min_samples < 2:
+            raise ValueError(f"min_samples must be >= 2, got {self.min_samples}")
+        if not self.group_weight > 0:
+            raise ValueError(f"group_weight must be > 0, got {self.group_weight}")
+        threshold_for(self.false_alarm)
+        for name in ("baseline_halflife", "normaliser_halflife", "scale_halflife"):
+            decay_for_halflife(getattr(self, name))
+
+    @property
+    def threshold(self) -> float:
+        return threshold_for(self.false_alarm)
+
+
+@dataclass(frozen=True)
+class BatchResult:
+    """What one batch produced.  Arrays are (B, n) unless noted; empty while warming up."""
+
+    transitions: list[Transition]
+    shift_sigma: np.ndarray      # debiased per-metric shift in residual sigmas (0 off the support)
+    expected: np.ndarray         # baseline's expected value in the metric's own units
+    residual_norm: np.ndarray    # (B,) norm of the projected residual, in residual sigmas
+    n_iter: np.ndarray           # (B,) solver iterations
+    converged: np.ndarray        # (B,) solver reached its tolerance
+
+
+class EntityDetector:
+    """Low-rank baseline plus sparse shift detection for one entity's metric vector.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(7)
+    >>> loadings = rng.standard_normal((20, 2))
+    >>> def draw(k):
+    ...     return 50.0 + rng.standard_normal((k, 2)) @ loadings.T * 3.0 + rng.standard_normal((k, 20))
+    >>> det = EntityDetector(20, [False] * 20, DetectorConfig(warmup=100))
+    >>> _ = det.process(draw(100), np.arange(100.0))
+    >>> quiet = det.process(draw(50), np.arange(100.0, 150.0))
+    >>> X = draw(20); X[:, 4] += 12.0          # metric 4 shifts by ~12 sigma
+    >>> out = det.process(X, np.arange(150.0, 170.0))
+    >>> [(t.kind, t.metrics.tolist()) for t in out.transitions]
+    [('firing', [4])]
+    """
+
+    def __init__(self, n_metrics: int, log_mask, config: DetectorConfig = DetectorConfig(),
+                 groups: list[np.ndarray] | None = None) -> None:
+        self.config = config
+        self.lam = config.threshold
+        self._scale_decay = decay_for_halflife(config.scale_halflife)
+        self._beta = winsorised_second_moment(self.lam)
+        self.normaliser = RobustNormaliser(np.asarray(log_mask, bool), halflife=config.normaliser_halflife)
+        self.baseline = SubspaceTracker(rank=config.rank, energy=config.energy, max_rank=config.max_rank,
+                                        halflife=config.baseline_halflife)
+        self.tracker = AlertTracker(n_metrics, config.decision)
+        self.residual_scale = np.ones(n_metrics)
+        self.groups: list[np.ndarray] = list(groups or [])
+        self.phi = build_dictionary(n_metrics, self.groups)
+        self.warm_start = np.zeros(self._n_columns)
+        self._warmup_rows: list[np.ndarray] = []
+        self.samples = 0
+        self.last_shift_sigma = np.zeros(n_metrics)
+
+    # -- shape bookkeeping ---------------------------------------------------------------------
+    @property
+    def n_metrics(self) -> int:
+        return self.normaliser.n_metrics
+
+    @property
+    def _n_columns(self) -> int:
+        return self.n_metrics + len(self.groups)
+
+    @property
+    def warming_up(self) -> bool:
+        return self.baseline.rank == 0
+
+    def set_groups(self, groups: list[np.ndarray]) -> None:
+        """Replace the group columns (e.g. after metrics were added or dropped)."""
+        self.groups = list(groups)
+        self.phi = build_dictionary(self.n_metrics, self.groups)
+        self.warm_start = np.concatenate([self.warm_start[: self.n_metrics], np.zeros(len(self.groups))])
+
+    def extend(self, log_mask) -> None:
+        """Add metrics that appeared after warm-up; each is learned from scratch before it is scored."""
+        log_mask = np.asarray(log_mask, bool)
+        k = log_mask.size
+        if self.warming_up:
+            self._warmup_rows = [np.concatenate([r, np.full(k, np.nan)]) for r in self._warmup_rows]
+        self.normaliser.extend(RobustNormaliser(log_mask, halflife=self.config.normaliser_halflife))
+        self.baseline.extend(k)
+        self.tracker.extend(k)
+        self.residual_scale = np.concatenate([self.residual_scale, np.ones(k)])
+        self.last_shift_sigma = np.concatenate([self.last_shift_sigma, np.zeros(k)])
+        self.warm_start = np.concatenate([self.warm_start[: self.n_metrics - k], np.zeros(k)])
+        self.set_groups(self.groups)   # same members; the dictionary grows by k identity columns
+
+    def keep(self, index: np.ndarray) -> None:
+        """Retain only the metrics at ``index`` (vanished metrics are dropped); call set_groups after."""
+        index = np.asarray(index, dtype=np.int64)
+        self.normaliser.keep(index)
+        self.baseline.keep(index)
+        self.tracker.keep(index)
+        self.residual_scale = self.residual_scale[index]
+        self.last_shift_sigma = self.last_shift_sigma[index]
+        self.groups = []
+        self.phi = None
+        self.warm_start = self.warm_start[index]
+
+    # -- the batch path ------------------------------------------------------------------------
+    def process(self, X: np.ndarray, ts: np.ndarray) -> BatchResult:
+        """Score and learn one micro-batch ``X`` (B, n) with timestamps ``ts`` (B,)."""
+        X = np.asarray(X, dtype=float)
+        ts = np.asarray(ts, dtype=float)
+        if X.ndim != 2 or X.shape[1] != self.n_metrics or ts.shape != (X.shape[0],):
+            raise ValueError(f"expected X (B, {self.n_metrics}) and ts (B,), got {X.shape} and {ts.shape}")
+        if self.warming_up:
+            return self._collect_warmup(X, ts)
+        return self._score_and_learn(X, ts)
+
+    def _collect_warmup(self, X: np.ndarray, ts: np.ndarray) -> BatchResult:
+        need = self.config.warmup - len(self._warmup_rows)
+        self._warmup_rows.extend(X[:need])
+        self.samples += min(need, X.shape[0])
+        if len(self._warmup_rows) >= self.config.warmup:
+            self._fit_warmup(np.array(self._warmup_rows))
+            self._warmup_rows = []
+            if X.shape[0] > need:
+                return self._score_and_learn(X[need:], ts[need:], leading=need)
+        return self._empty(X.shape[0])
+
+    def _fit_warmup(self, W: np.ndarray) -> None:
+        norm = self.normaliser.fit(W)
+        Z = norm.transform(W)
+        Z = np.where(norm.count >= self.config.min_samples, np.clip(Z, -6.0, 6.0), np.nan)
+        self.baseline.fit(Z)
+        # Residual scale from in-sample residuals, corrected for the r directions fitted to them.
+        filled = impute_low_rank(Z, self.baseline.rank)
+        R = filled - (filled @ self.baseline.U) @ self.baseline.U.T
+        R = np.where(np.isfinite(Z), R, np.nan)
+        rank = self.baseline.rank
+        with np.errstate(all="ignore"):
+            mad = MAD_TO_SIGMA * np.nanmedian(np.abs(R), axis=0) * math.sqrt(W.shape[0] / max(W.shape[0] - rank, 1))
+        self.residual_scale = np.where(np.isfinite(mad) & (mad > 1e-6), mad, 1.0)
+
+    def _empty(self, B: int) -> BatchResult:
+        zeros = np.zeros((B, self.n_metrics))
+        return BatchResult([], zeros, np.full((B, self.n_metrics), np.nan), np.zeros(B),
+                           np.zeros(B, dtype=np.int64), np.ones(B, dtype=bool))
+
+    def _score_and_learn(self, X: np.ndarray, ts: np.ndarray, leading: int = 0) -> BatchResult:
+        cfg = self.config
+        norm, U, phi = self.normaliser, self.baseline.U, self.phi
+        B, n = X.shape
+        Z = norm.transform(X)
+        present = np.isfinite(Z)
+        modelled = norm.count >= cfg.min_samples      # metrics the model knows well enough
+        observed = present & modelled
+        mask = None if observed.all() else observed
+        scales = column_scales(self.residual_scale, phi)
+        penalty = self.lam * scales
+        if phi is not None:
+            penalty[n:] *= cfg.group_weight
+        if mask is not None:
+            penalty = np.broadcast_to(penalty, (B, penalty.size)).copy()
+            penalty[:, :n][~observed] = np.inf
+            if phi is not None:   # a group with no observed member cannot be estimated
+                penalty[:, n:][(observed.astype(float) @ (phi[:, n:] > 0)) == 0] = np.inf
+        Zo = np.where(observed, Z, 0.0)
+        fit = solve_projected_lasso(Zo, U, penalty, phi=phi, mask=mask, init=self.warm_start,
+                                    tol=cfg.tol, max_iter=cfg.max_iter)
+        residual, coords = projected_residual(Zo, U, fit.coef, phi=phi, mask=mask)
+        support = np.flatnonzero((fit.coef != 0).any(axis=1))
+        coef_unbiased = fit.coef
+        if support.size:   # refit the few rows with a shift; the rest keep the LASSO's coordinates
+            coef_unbiased = fit.coef.copy()
+            sub_mask = None if mask is None else mask[support]
+            coef_unbiased[support] = debias(Zo[support], U, fit.coef[support], phi=phi, mask=sub_mask)
+            _, coords[support] = projected_residual(Zo[support], U, coef_unbiased[support], phi=phi,
+                                                    mask=sub_mask)
+        effect = metric_effect(coef_unbiased, phi)
+        effect_lasso = metric_effect(fit.coef, phi) if support.size else effect
+        baseline_z = coords @ U.T
+        expected = norm.inverse(baseline_z)
+        scored = norm.count >= cfg.warmup
+        shift_sigma = np.where(observed, effect / self.residual_scale, 0.0)
+        stat = np.where(observed, (effect_lasso + residual) / self.residual_scale, 0.0)
+        active = (effect_lasso != 0) & observed & scored
+        value = np.where(present, X, np.nan)
+        transitions = self.tracker.step(active, shift_sigma, stat, value, expected, ts)
+        self._learn(Z, present, observed, effect, baseline_z, residual, transitions)
+        if leading:   # rows refer to the caller's batch, which began with warm-up vectors
+            transitions = [replace(t, row=t.row + leading) for t in transitions]
+        self.warm_start = fit.coef[-1].copy()
+        self.samples += B
+        residual_norm = np.sqrt(np.sum((residual / self.residual_scale) ** 2, axis=1))
+        self.last_shift_sigma = shift_sigma[-1]
+        return self._pad(leading, BatchResult(transitions, shift_sigma, expected, residual_norm,
+                                              fit.n_iter, fit.converged))
+
+    def _learn(self, Z: np.ndarray, present: np.ndarray, observed: np.ndarray, effect: np.ndarray,
+               baseline_z: np.ndarray, residual: np.ndarray, transitions: list[Transition]) -> None:
+        cleaned = Z - effect
+        # Baseline: cleaned vectors, holes filled by the baseline's own prediction; skip rows
+        # that are mostly holes (they would only pull the basis towards its own guess).
+        complete = np.where(observed, cleaned, baseline_z)
+        enough = observed.mean(axis=1) >= 0.5
+        self.baseline.update(complete[enough])
+        # Residual scales: the LASSO residual is winsorised at lambda*d, hence the Huber factor.
+        self._update_residual_scale(residual, observed)
+        self.normaliser.update(np.where(present, cleaned, 0.0), present)
+        for t in transitions:
+            if t.kind == "adapted":   # the shift becomes the new normal
+                self.normaliser.accept_shift(t.metrics, effect[t.row, t.metrics])
+                self.warm_start[t.metrics] = 0.0
+
+    def _update_residual_scale(self, residual: np.ndarray, observed: np.ndarray) -> None:
+        B = residual.shape[0]
+        decay = self._scale_decay
+        weights = (1.0 - decay) * decay ** np.arange(B - 1, -1, -1)[:, None] * observed
+        kept = np.prod(np.where(observed, decay, 1.0), axis=0)
+        moment = (weights * residual ** 2).sum(axis=0) / self._beta
+        total = weights.sum(axis=0) + kept
+        variance = (kept * self.residual_scale ** 2 + moment) / total
+        self.residual_scale = np.sqrt(np.maximum(variance, 1e-12))
+
+    def _pad(self, leading: int, result: BatchResult) -> BatchResult:
+        if not leading:
+            return result
+        empty = self._empty(leading)
+        return BatchResult(result.transitions,
+                           *(np.concatenate([getattr(empty, f), getattr(result, f)])
+                             for f in ("shift_sigma", "expected", "residual_norm", "n_iter", "converged")))

@@ -1,0 +1,164 @@
+"""Robust online per-metric normalisation.
+
+Every metric is mapped to comparable units, ``z = (f(x) - loc) / scale``, where
+``f`` is the identity or a symmetric log for heavy-tailed metrics.  Location and
+scale start from the warm-up median and MAD and then follow exponentially
+weighted updates fed with the *cleaned* signal (observation minus the detected
+shift), so a fault never drags the normal level towards itself.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+#: Consistency factor making the MAD an estimate of the standard deviation for
+#: Gaussian data: 1 / Phi^{-1}(3/4) (Hampel 1974; standard robust-statistics result).
+MAD_TO_SIGMA = 1.482602218505602
+
+#: E|X| = sigma * sqrt(2/pi) for Gaussian X, so sqrt(pi/2) * E|X - mu| estimates sigma.
+ABS_DEV_TO_SIGMA = float(np.sqrt(np.pi / 2.0))
+
+
+def symlog(x: np.ndarray) -> np.ndarray:
+    """Symmetric log, ``sign(x) log(1 + |x|)``: tames heavy tails, defined for any sign."""
+    return np.sign(x) * np.log1p(np.abs(x))
+
+
+def symexp(y: np.ndarray) -> np.ndarray:
+    """Inverse of :func:`symlog`."""
+    return np.sign(y) * np.expm1(np.abs(y))
+
+
+def decay_for_halflife(halflife: float) -> float:
+    """Per-sample weight kept by an exponential average whose weight halves after ``halflife`` samples."""
+    if not halflife > 0:
+        raise ValueError(f"halflife must be > 0 samples, got {halflife!r}")
+    return float(0.5 ** (1.0 / halflife))
+
+
+class RobustNormaliser:
+    """Per-metric location and scale with exponentially weighted, cleaned updates.
+
+    Parameters
+    ----------
+    log_mask:
+        (n,) bool, metrics transformed with :func:`symlog` before normalising.
+    halflife:
+        Samples after which an observation's weight in location and scale halves.
+    min_scale:
+        Absolute floor on the scale; a relative floor of 1e-6 * |loc| also applies,
+        so constant metrics do not divide by zero.
+    clip_after:
+        Samples after which a metric's updates are clipped at 5 sigma.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(0)
+    >>> X = 10.0 + 2.0 * rng.standard_normal((500, 3))
+    >>> norm = RobustNormaliser(np.zeros(3, bool)).fit(X)
+    >>> bool(np.allclose(norm.loc, 10.0, atol=0.3) and np.allclose(norm.scale, 2.0, rtol=0.15))
+    True
+    >>> Z = norm.transform(X[:2])
+    >>> bool(np.allclose(norm.inverse(Z), X[:2]))
+    True
+    """
+
+    def __init__(self, log_mask: np.ndarray, *, halflife: float = 1440.0, min_scale: float = 1e-9,
+                 clip_after: int = 30) -> None:
+        self.log_mask = np.asarray(log_mask, dtype=bool).copy()
+        self.halflife = float(halflife)
+        self.decay = decay_for_halflife(halflife)
+        if not min_scale > 0:
+            raise ValueError(f"min_scale must be > 0, got {min_scale!r}")
+        self.min_scale = float(min_scale)
+        self.clip_after = int(clip_after)
+        n = self.log_mask.size
+        self.loc = np.zeros(n)
+        self.scale = np.ones(n)
+        self.count = np.zeros(n, dtype=np.int64)
+
+    @property
+    def n_metrics(self) -> int:
+        return self.log_mask.size
+
+    def _forward(self, X: np.ndarray) -> np.ndarray:
+        X = np.asarray(X, dtype=float)
+        return np.where(self.log_mask, symlog(X), X)
+
+    def _floor(self, scale: np.ndarray, loc: np.ndarray) -> np.ndarray:
+        return np.maximum(scale, np.maximum(self.min_scale, 1e-6 * np.abs(loc)))
+
+    def fit(self, X: np.ndarray) -> "RobustNormaliser":
+        """Initialise from a warm-up block (W, n); NaN = missing.  Metrics with no value keep count 0."""
+        F = self._forward(X)
+        seen = np.isfinite(F).any(axis=0)
+        F = np.where(seen, F, 0.0)  # all-missing columns: placeholder, count stays 0
+        with np.errstate(all="ignore"):
+            loc = np.nanmedian(F, axis=0)
+            mad = MAD_TO_SIGMA * np.nanmedian(np.abs(F - loc), axis=0)
+            # MAD is 0 for metrics that are constant most of the time; fall back to the mean deviation.
+            mean_dev = ABS_DEV_TO_SIGMA * np.nanmean(np.abs(F - loc), axis=0)
+        scale = np.where(mad > 0, mad, mean_dev)
+        self.loc = np.where(seen, loc, 0.0)
+        self.scale = np.where(seen, self._floor(np.nan_to_num(scale), self.loc), 1.0)
+        self.count = np.where(seen, np.isfinite(self._forward(X)).sum(axis=0), 0).astype(np.int64)
+        return self
+
+    def transform(self, X: np.ndarray) -> np.ndarray:
+        """Normalised values (B, n); missing stays NaN."""
+        return (self._forward(X) - self.loc) / self.scale
+
+    def inverse(self, Z: np.ndarray) -> np.ndarray:
+        """Map normalised values back to the metrics' own units."""
+        F = self.loc + np.asarray(Z, dtype=float) * self.scale
+        return np.where(self.log_mask, symexp(F), F)
+
+    def update(self, Z_clean: np.ndarray, observed: np.ndarray) -> None:
+        """Exponentially weighted update from cleaned, *normalised* values (B, n) in sample order.
+
+        Working in normalised units keeps the update cheap: a sample with normalised
+        value ``z`` moves the location by its weight times ``z * scale``.  While a
+        metric has fewer samples than the average's effective length it uses the
+        plain running mean instead (the usual bias adjustment of an exponential
+        average), so metrics that appear late are learned at once.  Deviations of
+        established metrics are clipped at 5 sigma, so one unexplained outlier
+        cannot move the level much.
+        """
+        Z_clean = np.asarray(Z_clean, dtype=float)
+        observed = np.asarray(observed, dtype=bool)
+        B = Z_clean.shape[0]
+        if B == 0:
+            return
+        # Weight of sample j (0 = oldest) after the batch: (1 - decay) * decay^(B-1-j).
+        weights = (1.0 - self.decay) * self.decay ** np.arange(B - 1, -1, -1)[:, None] * observed
+        kept = np.prod(np.where(observed, self.decay, 1.0), axis=0)  # weight left on the old estimate
+        n_obs = observed.sum(axis=0)
+        filling = self.count + n_obs < 1.0 / (1.0 - self.decay)
+        seen = np.maximum(self.count + n_obs, 1)
+        weights = np.where(filling, observed / seen, weights)
+        kept = np.where(filling, self.count / seen, kept)
+        z = np.where(observed, Z_clean, 0.0)
+        z = np.where(self.count >= self.clip_after, np.clip(z, -5.0, 5.0), z)
+        total = weights.sum(axis=0) + kept
+        shift = (weights * z).sum(axis=0) / total
+        abs_dev = (weights * np.abs(z - shift)).sum(axis=0) / total
+        # New scale: blend of the old (1 in normalised units) and the new mean absolute deviation.
+        rel_scale = kept / total + ABS_DEV_TO_SIGMA * abs_dev
+        self.loc = self.loc + shift * self.scale
+        self.scale = self._floor(self.scale * rel_scale, self.loc)
+        self.count = self.count + n_obs
+
+    def accept_shift(self, metrics: np.ndarray, shift_z: np.ndarray) -> None:
+        """Move the location of ``metrics`` by ``shift_z`` (normalised units): the new normal."""
+        self.loc[metrics] = self.loc[metrics] + shift_z * self.scale[metrics]
+
+    def extend(self, other: "RobustNormaliser") -> None:
+        """Append the metrics of ``other`` (fitted on their own warm-up) after this one's."""
+        for name in ("log_mask", "loc", "scale", "count"):
+            setattr(self, name, np.concatenate([getattr(self, name), getattr(other, name)]))
+
+    def keep(self, index: np.ndarray) -> None:
+        """Retain only the metrics at ``index`` (drops vanished metrics)."""
+        for name in ("log_mask", "loc", "scale", "count"):
+            setattr(self, name, getattr(self, name)[index])

@@ -1,0 +1,128 @@
+"""Assembly: decoded vectors of one entity -> the dense arrays its detector consumes.
+
+Each entity keeps the ordered list of metric names it has seen; a batch of
+vectors becomes ``X`` (B, n) with NaN where a metric is missing.  Producers
+almost always send the same metrics in the same order, so the column positions
+of a key sequence are cached and a row is filled with one numpy assignment.
+New names extend the entity (the detector learns them before scoring them);
+names absent for ``drop_after`` samples are dropped once they are quiet.
+"""
+
+from __future__ import annotations
+
+import fnmatch
+from dataclasses import dataclass
+
+import numpy as np
+
+from shiftsieve.models.decision import QUIET
+from shiftsieve.models.detector import DetectorConfig, EntityDetector
+
+from .decode import Vector
+
+
+@dataclass(frozen=True)
+class MetricRules:
+    """Name-based metric settings: which metrics use a log scale and which form groups."""
+
+    log_patterns: tuple[str, ...] = ()
+    groups: tuple[tuple[str, tuple[str, ...]], ...] = ()
+    max_metrics: int = 5000
+    drop_after: int = 1440
+
+    def log_scale(self, names: list[str]) -> np.ndarray:
+        return np.array([any(fnmatch.fnmatchcase(n, p) for p in self.log_patterns) for n in names], dtype=bool)
+
+    def group_members(self, names: list[str]) -> tuple[list[str], list[np.ndarray]]:
+        """Groups with at least two members among ``names``: their labels and member indices."""
+        labels, members = [], []
+        for label, patterns in self.groups:
+            idx = np.array([i for i, n in enumerate(names) if any(fnmatch.fnmatchcase(n, p) for p in patterns)],
+                           dtype=np.int64)
+            if idx.size >= 2:
+                labels.append(label)
+                members.append(idx)
+        return labels, members
+
+
+class EntityStream:
+    """One entity: its metric names, its detector, and the name -> column mapping."""
+
+    def __init__(self, entity: str, rules: MetricRules, config: DetectorConfig) -> None:
+        self.entity = entity
+        self.rules = rules
+        self.names: list[str] = []
+        self.index: dict[str, int] = {}
+        self.detector = EntityDetector(0, np.zeros(0, bool), config)
+        self.group_labels: list[str] = []
+        self._positions: dict[tuple[str, ...], np.ndarray] = {}
+        self._last_seen = np.zeros(0, dtype=np.int64)
+        self.ignored_metrics = 0
+        self.last_ts = float("-inf")
+        self.labels: dict[str, str] = {}
+
+    def assemble(self, vectors: list[Vector]) -> tuple[np.ndarray, np.ndarray]:
+        """Dense ``X`` (B, n) and ``ts`` (B,) for a batch of this entity's vectors, in order."""
+        self._admit_new_names(vectors)
+        X = np.full((len(vectors), len(self.names)), np.nan)
+        for row, vec in enumerate(vectors):
+            keys = tuple(vec.metrics)
+            pos = self._positions.get(keys)
+            if pos is None:
+                pos = self._positions_for(keys)
+            values = np.array(list(vec.metrics.values()), dtype=float)  # None -> NaN
+            known = pos >= 0
+            if known.all():
+                X[row, pos] = values
+            else:   # names beyond max_metrics
+                X[row, pos[known]] = values[known]
+        ts = np.array([v.ts for v in vectors], dtype=float)
+        self.last_ts = max(self.last_ts, float(ts.max()))
+        if vectors[-1].labels:
+            self.labels = vectors[-1].labels
+        return X, ts
+
+    def _positions_for(self, keys: tuple[str, ...]) -> np.ndarray:
+        pos = np.array([self.index.get(k, -1) for k in keys], dtype=np.int64)
+        if len(self._positions) < 64:   # bounded cache: producers use few key layouts
+            self._positions[keys] = pos
+        return pos
+
+    def _admit_new_names(self, vectors: list[Vector]) -> None:
+        fresh: dict[str, None] = {}
+        for vec in vectors:
+            if len(vec.metrics) != len(self.index) or tuple(vec.metrics) not in self._positions:
+                fresh.update((k, None) for k in vec.metrics if k not in self.index)
+        if not fresh:
+            return
+        room = self.rules.max_metrics - len(self.names)
+        new = list(fresh)[: max(room, 0)]
+        self.ignored_metrics += len(fresh) - len(new)
+        if not new:
+            return
+        start = len(self.names)
+        self.names.extend(new)
+        self.index.update((name, start + i) for i, name in enumerate(new))
+        self._positions.clear()
+        self.detector.extend(self.rules.log_scale(new))
+        self._last_seen = np.concatenate([self._last_seen, np.full(len(new), self.detector.samples)])
+        self._refresh_groups()
+
+    def _refresh_groups(self) -> None:
+        self.group_labels, members = self.rules.group_members(self.names)
+        self.detector.set_groups(members)
+
+    def observe(self, X: np.ndarray) -> None:
+        """Record which metrics were present and drop those absent too long (only when quiet)."""
+        present = np.isfinite(X).any(axis=0)
+        self._last_seen[present] = self.detector.samples
+        stale = (self.detector.samples - self._last_seen > self.rules.drop_after) & \
+            (self.detector.tracker.state == QUIET)
+        if stale.any() and not self.detector.warming_up:
+            keep = np.flatnonzero(~stale)
+            self.detector.keep(keep)
+            self.names = [self.names[i] for i in keep]
+            self.index = {n: i for i, n in enumerate(self.names)}
+            self._last_seen = self._last_seen[keep]
+            self._positions.clear()
+            self._refresh_groups()

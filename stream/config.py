@@ -1,0 +1,247 @@
+"""Configuration: one TOML file, every key overridable by ``SHIFTSIEVE_<SECTION>_<KEY>``.
+
+The schema below is the single source of truth for keys, types, defaults and
+allowed ranges; ``shiftsieve config check`` prints the effective values from it.
+Every invalid value produces a :class:`ConfigError` whose message is one line
+naming the key and what is allowed.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Callable, Mapping
+
+from shiftsieve.models.decision import DecisionConfig
+from shiftsieve.models.detector import DetectorConfig
+
+ENV_PREFIX = "SHIFTSIEVE_"
+
+
+class ConfigError(ValueError):
+    """An invalid configuration; ``str()`` is a one-line message naming the key."""
+
+
+@dataclass(frozen=True)
+class Setting:
+    section: str
+    key: str
+    kind: type  # int, float, str, bool, list (of str), dict (str -> list of str)
+    default: Any
+    allowed: str  # human description of the allowed values, used in error messages
+    check: Callable[[Any], bool]
+    help: str
+
+    @property
+    def env(self) -> str:
+        return f"{ENV_PREFIX}{self.section.upper()}_{self.key.upper()}"
+
+
+def _range(lo: float, hi: float, *, lo_open: bool = False, hi_open: bool = False) -> Callable[[Any], bool]:
+    def check(v: Any) -> bool:
+        above = v > lo if lo_open else v >= lo
+        below = v < hi if hi_open else v <= hi
+        return math.isfinite(v) and above and below
+    return check
+
+
+def _patterns(v: Any) -> bool:
+    return all(isinstance(p, str) and p for p in v)
+
+
+def _groups(v: Any) -> bool:
+    return all(isinstance(k, str) and k and isinstance(p, list) and p and _patterns(p) for k, p in v.items())
+
+
+SCHEMA: tuple[Setting, ...] = (
+    Setting("model", "warmup", int, 200, "an integer in 10..100000", _range(10, 100_000),
+            "vectors an entity collects before it is scored"),
+    Setting("model", "rank", int, 0, "an integer in 0..64 (0 = choose by energy)", _range(0, 64),
+            "rank of the baseline subspace; 0 chooses it at warm-up from `energy` capped at `max_rank`"),
+    Setting("model", "energy", float, 0.9, "a number in (0, 1]", _range(0, 1, lo_open=True),
+            "share of warm-up energy the chosen rank explains"),
+    Setting("model", "max_rank", int, 8, "an integer in 1..64", _range(1, 64), "cap on the chosen rank"),
+    Setting("model", "baseline_halflife", float, 1440.0, "a number of samples in (0, 1e9]",
+            _range(0, 1e9, lo_open=True), "samples after which a vector's weight in the baseline halves"),
+    Setting("model", "normaliser_halflife", float, 1440.0, "a number of samples in (0, 1e9]",
+            _range(0, 1e9, lo_open=True), "half-life of each metric's location and scale"),
+    Setting("model", "scale_halflife", float, 720.0, "a number of samples in (0, 1e9]",
+            _range(0, 1e9, lo_open=True), "half-life of each metric's residual scale"),
+    Setting("model", "false_alarm", float, 1e-3, "a probability in (0, 0.5)", _range(0, 0.5, lo_open=True, hi_open=True),
+            "target probability that a quiet metric's sample is flagged (sets lambda)"),
+    Setting("model", "tol", float, 1e-4, "a number in (0, 0.1]", _range(0, 0.1, lo_open=True),
+            "solver tolerance: duality gap relative to ||P z||^2"),
+    Setting("model", "max_iter", int, 300, "an integer in 1..100000", _range(1, 100_000),
+            "solver iteration cap per sample"),
+    Setting("model", "min_samples", int, 30, "an integer in 2..100000", _range(2, 100_000),
+            "samples a new metric needs before it enters the model"),
+    Setting("model", "group_weight", float, 1.0, "a number in (0, 100]", _range(0, 100, lo_open=True),
+            "penalty of a group column relative to a single metric"),
+    Setting("model", "log_metrics", list, ["*_ms", "*_seconds", "*_bytes"], "a list of non-empty glob patterns",
+            _patterns, "metrics (by name pattern) modelled on a symmetric log scale"),
+    Setting("model", "groups", dict, {}, "a table of group name -> non-empty list of glob patterns", _groups,
+            "group columns: metrics matching a group's patterns can shift as one coefficient"),
+    Setting("decision", "confirm_k", int, 3, "an integer in 1..63, at most confirm_m", _range(1, 63),
+            "active samples needed among the last confirm_m to fire"),
+    Setting("decision", "confirm_m", int, 5, "an integer in 1..63", _range(1, 63), "confirmation window"),
+    Setting("decision", "clear_sigma", float, 2.0, "a number in [0, 100]", _range(0, 100),
+            "a firing metric clears when its statistic stays below this many residual sigmas"),
+    Setting("decision", "clear_after", int, 5, "an integer in 1..100000", _range(1, 100_000),
+            "consecutive quiet samples needed to clear"),
+    Setting("decision", "adapt_after", int, 1440, "an integer in 0..10000000 (0 = never)", _range(0, 10_000_000),
+            "samples a shift may fire before it is accepted as the new normal"),
+    Setting("engine", "batch_size", int, 64, "an integer in 1..4096", _range(1, 4096),
+            "vectors per entity in one micro-batch (replay); live batches follow the polls"),
+    Setting("engine", "max_entities", int, 100_000, "an integer in 1..10000000", _range(1, 10_000_000),
+            "entities one process tracks; vectors of further entities are rejected"),
+    Setting("engine", "max_metrics", int, 5000, "an integer in 1..100000", _range(1, 100_000),
+            "metrics one entity tracks; further names are ignored and counted"),
+    Setting("engine", "drop_after", int, 1440, "an integer in 1..10000000", _range(1, 10_000_000),
+            "samples a metric may be absent before it is dropped from its entity"),
+    Setting("input", "max_message_bytes", int, 1 << 20, "an integer in 64..67108864", _range(64, 1 << 26),
+            "largest accepted message or line"),
+    Setting("input", "max_metrics_per_message", int, 10_000, "an integer in 1..1000000", _range(1, 1_000_000),
+            "most metrics accepted in one vector"),
+)
+
+_BY_NAME = {(s.section, s.key): s for s in SCHEMA}
+
+
+class Config:
+    """Validated settings, read as ``config.model.warmup`` or ``config.get("model", "warmup")``."""
+
+    def __init__(self, values: Mapping[tuple[str, str], Any], sources: Mapping[tuple[str, str], str]) -> None:
+        self._values = dict(values)
+        self.sources = dict(sources)
+
+    def get(self, section: str, key: str) -> Any:
+        return self._values[(section, key)]
+
+    def __getattr__(self, section: str) -> Any:
+        if section.startswith("_") or section in ("sources",):
+            raise AttributeError(section)
+        keys = {k: v for (s, k), v in self._values.items() if s == section}
+        if not keys:
+            raise AttributeError(f"no config section {section!r}")
+        return _Section(keys)
+
+    def items(self) -> list[tuple[Setting, Any, str]]:
+        return [(s, self._values[(s.section, s.key)], self.sources[(s.section, s.key)]) for s in SCHEMA]
+
+    def detector_config(self) -> DetectorConfig:
+        m, d = self.model, self.decision
+        return DetectorConfig(
+            warmup=m.warmup, rank=m.rank or None, energy=m.energy, max_rank=m.max_rank,
+            baseline_halflife=m.baseline_halflife, normaliser_halflife=m.normaliser_halflife,
+            scale_halflife=m.scale_halflife, false_alarm=m.false_alarm, group_weight=m.group_weight,
+            min_samples=m.min_samples, tol=m.tol, max_iter=m.max_iter,
+            decision=DecisionConfig(confirm_k=d.confirm_k, confirm_m=d.confirm_m, clear_sigma=d.clear_sigma,
+                                    clear_after=d.clear_after, adapt_after=d.adapt_after))
+
+
+class _Section:
+    def __init__(self, values: dict[str, Any]) -> None:
+        self.__dict__.update(values)
+
+
+def _coerce(setting: Setting, value: Any, origin: str) -> Any:
+    name = f"{setting.section}.{setting.key}"
+    kind = setting.kind
+    ok_type = {
+        int: isinstance(value, int) and not isinstance(value, bool),
+        float: isinstance(value, (int, float)) and not isinstance(value, bool),
+        str: isinstance(value, str),
+        bool: isinstance(value, bool),
+        list: isinstance(value, list),
+        dict: isinstance(value, dict),
+    }[kind]
+    if not ok_type:
+        raise ConfigError(f"{name} ({origin}): expected {setting.allowed}, got {value!r}")
+    if kind is float:
+        value = float(value)
+    if not setting.check(value):
+        raise ConfigError(f"{name} ({origin}): expected {setting.allowed}, got {value!r}")
+    return value
+
+
+def _parse_env(setting: Setting, text: str) -> Any:
+    """Environment values are TOML values (``0.01``, ``["a_*"]``, ``{x = ["y"]}``); bare words are strings."""
+    try:
+        return tomllib.loads(f"v = {text}")["v"]
+    except tomllib.TOMLDecodeError:
+        if setting.kind is str:
+            return text
+        raise ConfigError(f"{setting.section}.{setting.key} ({setting.env}): expected {setting.allowed}, "
+                          f"got {text!r}") from None
+
+
+def load_config(path: str | os.PathLike | None = None, environ: Mapping[str, str] | None = None) -> Config:
+    """Defaults, then the TOML file (if any), then ``SHIFTSIEVE_<SECTION>_<KEY>`` variables."""
+    environ = os.environ if environ is None else environ
+    values = {(s.section, s.key): s.default for s in SCHEMA}
+    sources = {(s.section, s.key): "default" for s in SCHEMA}
+    if path is not None:
+        file_values = _read_toml(Path(path))
+        for section, table in file_values.items():
+            if not isinstance(table, dict):
+                raise ConfigError(f"{path}: top-level key {section!r} must be a [section] table")
+            for key, value in table.items():
+                setting = _BY_NAME.get((section, key))
+                if setting is None:
+                    known = sorted(k for s, k in _BY_NAME if s == section)
+                    hint = f"known keys: {', '.join(known)}" if known else \
+                        f"known sections: {', '.join(sorted({s for s, _ in _BY_NAME}))}"
+                    raise ConfigError(f"{path}: unknown key {section}.{key} ({hint})")
+                values[(section, key)] = _coerce(setting, value, str(path))
+                sources[(section, key)] = str(path)
+    for setting in SCHEMA:
+        if setting.env in environ:
+            values[(setting.section, setting.key)] = _coerce(setting, _parse_env(setting, environ[setting.env]),
+                                                             setting.env)
+            sources[(setting.section, setting.key)] = setting.env
+    unknown = sorted(k for k in environ if k.startswith(ENV_PREFIX) and k not in {s.env for s in SCHEMA})
+    if unknown:
+        raise ConfigError(f"unknown environment variable {unknown[0]} (see `shiftsieve config check`)")
+    if values[("decision", "confirm_k")] > values[("decision", "confirm_m")]:
+        raise ConfigError(f"decision.confirm_k: expected at most decision.confirm_m "
+                          f"({values[('decision', 'confirm_m')]}), got {values[('decision', 'confirm_k')]}")
+    return Config(values, sources)
+
+
+def _read_toml(path: Path) -> dict[str, Any]:
+    try:
+        with path.open("rb") as f:
+            return tomllib.load(f)
+    except FileNotFoundError:
+        raise ConfigError(f"config file not found: {path}") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"cannot read config file {path}: {exc}") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{path}: invalid TOML: {exc}") from None
+
+
+def render(config: Config) -> str:
+    """The effective configuration as TOML, each value annotated with where it came from."""
+    lines: list[str] = []
+    section = None
+    for setting, value, source in config.items():
+        if setting.section != section:
+            section = setting.section
+            lines.append(f"{'' if not lines else chr(10)}[{section}]")
+        lines.append(f"{setting.key} = {_toml_value(value)}  # {source}; {setting.help}")
+    return "\n".join(lines) + "\n"
+
+
+def _toml_value(value: Any) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, str):
+        return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(value, list):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    if isinstance(value, dict):
+        return "{" + ", ".join(f"{_toml_value(k)} = {_toml_value(v)}" for k, v in value.items()) + "}"
+    return repr(value)

@@ -1,0 +1,30 @@
+"""Smoke test of the solver benchmark script (figures present; no timing bounds)."""
+
+from __future__ import annotations
+
+import importlib.util
+import re
+from pathlib import Path
+
+BENCH = Path(__file__).parent / "benchmarks" / "bench_solver.py"
+
+
+def _load_bench():
+    spec = importlib.util.spec_from_file_location("bench_solver", BENCH)
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    return mod
+
+
+def test_bench_solver_runs(capsys):
+    assert _load_bench().main(["--quick"]) == 0
+    out = capsys.readouterr().out
+    num = r"[0-9]+(?:\.[0-9]+)?"
+    for label in (r"\(a\) ours warm", r"\(b\) sklearn cold", r"\(c\) ours cold"):
+        assert re.search(label + r"\s+per-vector\s+" + num + r" us", out), (label, out)
+    assert re.search(r"ratio sklearn-cold / ours-warm:\s+" + num + "x", out), out
+    assert re.search(r"ratio sklearn-cold / ours-cold:\s+" + num + "x", out), out
+    assert re.search(r"iterations: zero-iteration\s+" + num + "%", out), out
+    # The benchmark's own agreement figure: same problem, same tolerance rule.
+    m = re.search(r"objective \(ours - sklearn\)/sklearn on the sklearn subset: max ([-+0-9.e]+)", out)
+    assert m and abs(float(m.group(1))) < 1e-4, out
