@@ -126,9 +126,8 @@ class EntityDetector:
                                         halflife=config.baseline_halflife)
         self.tracker = AlertTracker(n_metrics, config.decision)
         self.residual_scale = np.ones(n_metrics)
-        self.groups: list[np.ndarray] = list(groups or [])
-        self.phi = build_dictionary(n_metrics, self.groups)
-        self.warm_start = np.zeros(self._n_columns)
+        self.warm_start = np.zeros(n_metrics)
+        self.set_groups(list(groups or []))
         self._warmup_rows: list[np.ndarray] = []
         self.samples = 0
         self.last_shift_sigma = np.zeros(n_metrics)
@@ -139,10 +138,6 @@ class EntityDetector:
         return self.normaliser.n_metrics
 
     @property
-    def _n_columns(self) -> int:
-        return self.n_metrics + len(self.groups)
-
-    @property
     def warming_up(self) -> bool:
         return self.baseline.rank == 0
 
@@ -150,6 +145,7 @@ class EntityDetector:
         """Replace the group columns (e.g. after metrics were added or dropped)."""
         self.groups = list(groups)
         self.phi = build_dictionary(self.n_metrics, self.groups)
+        self._lipschitz = 1.0 if self.phi is None else float(np.linalg.norm(self.phi, 2) ** 2)
         self.warm_start = np.concatenate([self.warm_start[: self.n_metrics], np.zeros(len(self.groups))])
 
     def extend(self, log_mask) -> None:
@@ -174,9 +170,8 @@ class EntityDetector:
         self.tracker.keep(index)
         self.residual_scale = self.residual_scale[index]
         self.last_shift_sigma = self.last_shift_sigma[index]
-        self.groups = []
-        self.phi = None
         self.warm_start = self.warm_start[index]
+        self.set_groups([])
 
     # -- the batch path ------------------------------------------------------------------------
     def process(self, X: np.ndarray, ts: np.ndarray) -> BatchResult:
@@ -232,14 +227,9 @@ class EntityDetector:
         penalty = self.lam * scales
         if phi is not None:
             penalty[n:] *= cfg.group_weight
-        if mask is not None:
-            penalty = np.broadcast_to(penalty, (B, penalty.size)).copy()
-            penalty[:, :n][~observed] = np.inf
-            if phi is not None:   # a group with no observed member cannot be estimated
-                penalty[:, n:][(observed.astype(float) @ (phi[:, n:] > 0)) == 0] = np.inf
-        Zo = np.where(observed, Z, 0.0)
+        Zo = np.where(observed, Z, 0.0)   # the solver fixes unobserved columns at zero
         fit = solve_projected_lasso(Zo, U, penalty, phi=phi, mask=mask, init=self.warm_start,
-                                    tol=cfg.tol, max_iter=cfg.max_iter)
+                                    tol=cfg.tol, max_iter=cfg.max_iter, lipschitz=self._lipschitz)
         residual, coords = projected_residual(Zo, U, fit.coef, phi=phi, mask=mask)
         support = np.flatnonzero((fit.coef != 0).any(axis=1))
         coef_unbiased = fit.coef

@@ -25,7 +25,11 @@ the same thing in both. The dual point is the residual rescaled to dual
 feasibility. Before any iteration the gap is checked at the warm start and at
 zero, so a sample whose warm start is already optimal, or whose solution is
 zero (the normal case), costs no iteration; converged samples leave the
-working set every few iterations, so cost follows the hard samples.
+working set every few iterations, so cost follows the hard samples. Zero is
+accepted only when it satisfies the optimality conditions exactly: a small
+relative gap must not hide a coordinate just over its threshold, because the
+support is what the detector decides on (its false-alarm calibration needs
+"non-zero iff over the threshold").
 
 Zero penalties are allowed, but a coordinate with penalty 0 only admits a
 dual point once its correlation with the residual is exactly 0, so such
@@ -355,7 +359,13 @@ def solve_projected_lasso(
 
     coef = X.copy()
     gap = p_best - d_best
-    converged = gap <= thresh
+    # Zero is accepted only when it is exactly optimal (|Phi^T P z| <= penalty everywhere):
+    # a small relative gap would otherwise hide a coordinate just over its threshold, and the
+    # support is the detector's decision.
+    zero_exact = np.max(np.abs(C0) * inv_pen, axis=1, initial=0.0) <= 1.0
+    if zero_pen is not None:
+        zero_exact &= ~np.any(zero_pen & (C0 != 0), axis=1)
+    converged = (gap <= thresh) & (zero_exact | np.any(X != 0, axis=1))
     n_iter = np.zeros(B, dtype=np.int64)
 
     act = np.flatnonzero(~converged)
@@ -472,17 +482,34 @@ def debias(
     prob = _prepare(Z, U, phi, mask)
     S = _check_coef(S, prob)
     out = np.zeros_like(S)
-    Y, _ = _project(prob.Z, prob.U, prob.m, prob.ginv)
-    for b in np.flatnonzero(np.any(S != 0, axis=1)):
-        sup = np.flatnonzero(S[b])
-        if prob.phi is None:
-            cols = np.zeros((sup.size, prob.p))
-            cols[np.arange(sup.size), sup] = 1.0
-        else:
-            cols = prob.phi[:, sup].T  # (|S|, n)
-        m, ginv = prob.rows(b)
-        A, _ = _project(cols, prob.U, m, ginv)  # rows: P_b phi_j
-        out[b, sup] = np.linalg.lstsq(A.T, Y[b], rcond=None)[0]
+    rows = np.flatnonzero(np.any(S != 0, axis=1))
+    if rows.size == 0:
+        return out
+    # Supports differ per row: pad them to the largest size k and solve all the
+    # k x k normal equations in one batched call (pads get an identity block).
+    support = S[rows] != 0
+    k = int(support.sum(axis=1).max())
+    slots = np.argsort(~support, axis=1, kind="stable")[:, :k]  # support columns first, in order
+    valid = np.take_along_axis(support, slots, axis=1)  # (B', k) False = padding
+    n = prob.Z.shape[1]
+    if prob.phi is None:
+        cols = np.zeros((rows.size, k, n))
+        np.put_along_axis(cols, slots[:, :, None], valid[:, :, None].astype(float), axis=2)
+    else:
+        cols = prob.phi.T[slots] * valid[:, :, None]  # (B', k, n): phi_j per support slot
+    m, ginv = prob.rows(rows)
+    if m is not None:
+        m, ginv = m[:, None, :], ginv[:, None, :, :]
+    A, _ = _project(cols, prob.U, m, ginv)  # rows: P_b phi_j
+    Y, _ = _project(prob.Z[rows], prob.U, *prob.rows(rows))
+    gram = A @ A.transpose(0, 2, 1)
+    rhs = np.einsum("bkn,bn->bk", A, Y)
+    pads = ~valid
+    gram[pads[:, :, None] | pads[:, None, :]] = 0.0
+    gram[pads[:, :, None] & np.eye(k, dtype=bool)] = 1.0
+    # Minimum-norm solution when P_b Phi_S is rank deficient (e.g. a group and all its members).
+    coef = np.einsum("bij,bj->bi", np.linalg.pinv(gram, rtol=_GRAM_RTOL, hermitian=True), rhs)
+    out[np.repeat(rows, k).reshape(-1, k)[valid], slots[valid]] = coef[valid]
     return out
 
 

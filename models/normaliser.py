@@ -83,8 +83,10 @@ class RobustNormaliser:
         return self.log_mask.size
 
     def _forward(self, X: np.ndarray) -> np.ndarray:
-        X = np.asarray(X, dtype=float)
-        return np.where(self.log_mask, symlog(X), X)
+        X = np.array(X, dtype=float)
+        if self.log_mask.any():
+            X[..., self.log_mask] = symlog(X[..., self.log_mask])
+        return X
 
     def _floor(self, scale: np.ndarray, loc: np.ndarray) -> np.ndarray:
         return np.maximum(scale, np.maximum(self.min_scale, 1e-6 * np.abs(loc)))
@@ -112,7 +114,9 @@ class RobustNormaliser:
     def inverse(self, Z: np.ndarray) -> np.ndarray:
         """Map normalised values back to the metrics' own units."""
         F = self.loc + np.asarray(Z, dtype=float) * self.scale
-        return np.where(self.log_mask, symexp(F), F)
+        if self.log_mask.any():
+            F[..., self.log_mask] = symexp(F[..., self.log_mask])
+        return F
 
     def update(self, Z_clean: np.ndarray, observed: np.ndarray) -> None:
         """Exponentially weighted update from cleaned, *normalised* values (B, n) in sample order.
@@ -125,29 +129,32 @@ class RobustNormaliser:
         established metrics are clipped at 5 sigma, so one unexplained outlier
         cannot move the level much.
         """
-        Z_clean = np.asarray(Z_clean, dtype=float)
         observed = np.asarray(observed, dtype=bool)
-        B = Z_clean.shape[0]
+        B = observed.shape[0]
         if B == 0:
             return
-        # Weight of sample j (0 = oldest) after the batch: (1 - decay) * decay^(B-1-j).
-        weights = (1.0 - self.decay) * self.decay ** np.arange(B - 1, -1, -1)[:, None] * observed
-        kept = np.prod(np.where(observed, self.decay, 1.0), axis=0)  # weight left on the old estimate
-        n_obs = observed.sum(axis=0)
-        filling = self.count + n_obs < 1.0 / (1.0 - self.decay)
-        seen = np.maximum(self.count + n_obs, 1)
-        weights = np.where(filling, observed / seen, weights)
-        kept = np.where(filling, self.count / seen, kept)
+        seen_now = observed.sum(axis=0)
         z = np.where(observed, Z_clean, 0.0)
-        z = np.where(self.count >= self.clip_after, np.clip(z, -5.0, 5.0), z)
-        total = weights.sum(axis=0) + kept
-        shift = (weights * z).sum(axis=0) / total
-        abs_dev = (weights * np.abs(z - shift)).sum(axis=0) / total
-        # New scale: blend of the old (1 in normalised units) and the new mean absolute deviation.
-        rel_scale = kept / total + ABS_DEV_TO_SIGMA * abs_dev
+        np.clip(z, -5.0, 5.0, out=z, where=self.count >= self.clip_after)
+        # Exponential weights (1 - decay) decay^(B-1-j) for sample j (0 = oldest); products with
+        # them are matrix-vector products, and the old estimate keeps decay^(samples seen).
+        decay_w = (1.0 - self.decay) * self.decay ** np.arange(B - 1, -1, -1)
+        ew_total = decay_w @ observed
+        ew_kept = self.decay ** seen_now
+        # While a metric has fewer samples than the average's effective length, plain running
+        # means instead (the usual bias adjustment of an exponential average).
+        seen = self.count + seen_now
+        filling = seen < 1.0 / (1.0 - self.decay)
+        total = np.where(filling, 1.0, ew_total + ew_kept)
+        kept = np.where(filling, self.count / np.maximum(seen, 1), ew_kept) / total
+        w_fill = 1.0 / np.maximum(seen, 1)
+        shift = np.where(filling, z.sum(axis=0) * w_fill, (decay_w @ z) / total)
+        dev = np.abs(z - shift) * observed
+        abs_dev = np.where(filling, dev.sum(axis=0) * w_fill, (decay_w @ dev) / total)
+        # New scale: the old one (1 in normalised units) blended with the new mean absolute deviation.
         self.loc = self.loc + shift * self.scale
-        self.scale = self._floor(self.scale * rel_scale, self.loc)
-        self.count = self.count + n_obs
+        self.scale = self._floor(self.scale * (kept + ABS_DEV_TO_SIGMA * abs_dev), self.loc)
+        self.count = seen
 
     def accept_shift(self, metrics: np.ndarray, shift_z: np.ndarray) -> None:
         """Move the location of ``metrics`` by ``shift_z`` (normalised units): the new normal."""

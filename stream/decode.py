@@ -150,13 +150,14 @@ def decode_vector(raw: bytes | bytearray | memoryview | str,
     return vector_from_object(obj, limits)
 
 
-def _parse_lenient(raw: bytes | bytearray | memoryview | str, strict_error: Exception) -> Any:
+def _parse_lenient(raw: bytes | bytearray | memoryview | str, strict_error: json.JSONDecodeError) -> Any:
     """Slow path: stdlib JSON also reads NaN/Infinity and out-of-range numbers; else bad_json."""
     try:
         text = raw if isinstance(raw, str) else bytes(raw).decode("utf-8")
         return json.loads(text)
     except (ValueError, RecursionError):  # JSONDecodeError, UnicodeDecodeError, int digit limit
-        raise DecodeError("bad_json", f"not valid JSON: {strict_error}") from None
+        # orjson's "line 1 column N" would be confused with the line number of a file
+        raise DecodeError("bad_json", f"not valid JSON: {strict_error.msg} (at character {strict_error.pos})") from None
 
 
 def vector_from_object(obj: Any, limits: DecodeLimits = DEFAULT_LIMITS) -> Vector:
