@@ -108,62 +108,123 @@ class AlertTracker:
         return self.state.size
 
     def step(self, active: np.ndarray, shift: np.ndarray, stat: np.ndarray, value: np.ndarray,
-             expected: np.ndarray, ts: np.ndarray) -> list[Transition]:
-        """Advance over a batch (B, n) in sample order; returns the transitions in order.
+             expected: np.ndarray, ts: np.ndarray, columns: np.ndarray | None = None) -> list[Transition]:
+        """Advance over a batch in sample order; returns the transitions in order.
 
-        ``shift`` is the reported (debiased) shift in residual sigmas, ``stat`` the
-        statistic compared with ``clear_sigma``; ``value``/``expected`` ride along
-        into the transitions.
+        Arrays are (B, n), or (B, k) for the metrics ``columns`` (k,) when given; the
+        other metrics must be quiet and are inactive throughout the batch.  ``shift``
+        is the reported (debiased) shift in residual sigmas, ``stat`` the statistic
+        compared with ``clear_sigma``; ``value``/``expected`` ride along into the
+        transitions.
         """
         active = np.asarray(active, dtype=bool)
         B = active.shape[0]
         cfg = self.config
+        if columns is None:
+            columns = np.arange(self.n_metrics)
+        else:
+            outside = np.ones(self.n_metrics, dtype=bool)
+            outside[columns] = False
+            self.history[outside] = self._shifted(self.history[outside], B)
         # Window counts ignore resets inside the batch, so they bound the true counts from above:
         # a metric that never reaches confirm_k and is not firing cannot change anything but its
         # history and its quiet/pending flag, which are computed for all such metrics at once.
-        can_fire = self._window_counts(active) >= cfg.confirm_k
-        hot_mask = (self.state == FIRING) | can_fire.any(axis=0)
-        self._advance_quietly(active, ~hot_mask)
-        hot = np.flatnonzero(hot_mask)
-        if hot.size == 0:
+        can_fire = self._window_counts(active, columns) >= cfg.confirm_k
+        hot_local = np.flatnonzero((self.state[columns] == FIRING) | can_fire.any(axis=0))
+        cold = np.ones(columns.size, dtype=bool)
+        cold[hot_local] = False
+        self._advance_quietly(active[:, cold], columns[cold])
+        if hot_local.size == 0:
             return []
-        can_fire = can_fire[:, hot]
-        rows_that_can_fire = np.flatnonzero(can_fire.any(axis=1))
-        last = int(rows_that_can_fire[-1]) if rows_that_can_fire.size else -1
-        first = 0 if (self.state[hot] == FIRING).any() else int(rows_that_can_fire[0])
-        self._advance_quietly(active[:first], hot_mask)
-        out: list[Transition] = []
+        hot = columns[hot_local]   # metric ids; data columns are hot_local
+        active, shift, stat = active[:, hot_local], shift[:, hot_local], stat[:, hot_local]
+        value, expected = value[:, hot_local], expected[:, hot_local]
+        can_fire = can_fire[:, hot_local]
         muted = np.zeros(hot.size, dtype=bool)  # adapted this batch: later rows still show the old shift
-        for row in range(first, B):
-            if row > last and not (self.state[hot] == FIRING).any():
-                rest = active[row:].copy()   # nothing more can happen in this batch
-                rest[:, hot[muted]] = False
-                self._advance_quietly(rest, hot_mask)
+        out: list[Transition] = []
+        row = 0
+        while row < B:
+            # Jump over the rows in which no transition is possible, then take the next one singly.
+            event = self._next_possible_event(row, hot, stat, can_fire)
+            self._jump(row, event, hot, active & ~muted, shift, stat, value, expected)
+            if event >= B:
                 break
-            a = active[row, hot] & ~muted
-            hist = ((self.history[hot] << np.uint64(1)) | a.astype(np.uint64)) & self._window_mask
-            state = self.state[hot]
-            count = np.bitwise_count(hist)
-            fire = (state != FIRING) & (count >= cfg.confirm_k)
-            firing = state == FIRING
-            low = np.abs(stat[row, hot]) < cfg.clear_sigma
-            below = np.where(firing & low, self.below[hot] + 1, 0)
-            firing_for = np.where(firing, self.firing_for[hot] + 1, 0)
-            clear = firing & (below >= cfg.clear_after)
-            adapt = firing & ~clear & (cfg.adapt_after > 0) & (firing_for >= cfg.adapt_after)
-            ended = clear | adapt
-            self._track_peaks(hot, firing | fire, shift[row], value[row], expected[row])
-            self.history[hot] = np.where(ended, np.uint64(0), hist)
-            self.state[hot] = np.where(fire | (firing & ~ended), FIRING, np.where(ended | (hist == 0), QUIET, PENDING))
-            self.below[hot] = np.where(fire, 0, below)
-            self.firing_for[hot] = np.where(fire, 0, firing_for)
-            muted |= adapt
-            out.extend(self._incident_transitions(row, float(ts[row]), hot[fire], hot[clear],
-                                                  hot[adapt], shift[row], value[row], expected[row]))
+            out.extend(self._step_row(event, hot, active[event] & ~muted, shift[event], stat[event],
+                                      value[event], expected[event], float(ts[event]), muted))
+            row = event + 1
         return out
 
-    def _window_counts(self, active: np.ndarray) -> np.ndarray:
-        """Active samples among the last ``confirm_m`` at every row (B, n), history included."""
+    def _next_possible_event(self, row: int, hot: np.ndarray, stat: np.ndarray, can_fire: np.ndarray) -> int:
+        """First row >= ``row`` at which a hot metric could fire, clear or adapt (B if none)."""
+        cfg = self.config
+        B = stat.shape[0]
+        firing = self.state[hot] == FIRING
+        candidate = (can_fire[row:] & ~firing).any(axis=1)
+        if firing.any():
+            low = np.abs(stat[row:, firing]) < cfg.clear_sigma
+            run = self._low_runs(low, self.below[hot[firing]])
+            candidate |= (run >= cfg.clear_after).any(axis=1)
+            if cfg.adapt_after:
+                due = row + int(np.min(cfg.adapt_after - self.firing_for[hot[firing]])) - 1
+                if due < B:
+                    candidate[max(due - row, 0)] = True
+        hits = np.flatnonzero(candidate)
+        return row + int(hits[0]) if hits.size else B
+
+    @staticmethod
+    def _low_runs(low: np.ndarray, carry: np.ndarray) -> np.ndarray:
+        """Length of the run of consecutive low rows ending at each row; ``carry`` continues a run."""
+        idx = np.arange(low.shape[0])[:, None]
+        last_break = np.maximum.accumulate(np.where(low, -1, idx), axis=0)
+        return np.where(last_break < 0, idx + 1 + carry, idx - last_break)
+
+    def _jump(self, start: int, stop: int, hot: np.ndarray, active: np.ndarray, shift: np.ndarray,
+              stat: np.ndarray, value: np.ndarray, expected: np.ndarray) -> None:
+        """Advance hot metrics over rows [start, stop) in which, by construction, nothing transitions."""
+        if stop <= start:
+            return
+        firing = self.state[hot] == FIRING
+        self._advance_quietly(active[start:stop], hot)   # history; pending/quiet flags
+        if not firing.any():
+            return
+        ids = hot[firing]
+        self.state[ids] = FIRING
+        low = np.abs(stat[start:stop, firing]) < self.config.clear_sigma
+        self.below[ids] = self._low_runs(low, self.below[ids])[-1]
+        self.firing_for[ids] += stop - start
+        seg = np.abs(shift[start:stop, firing])
+        top = np.argmax(seg, axis=0)
+        cols = np.arange(ids.size)
+        higher = seg[top, cols] > np.abs(self.peak_shift[ids])
+        rows = start + top[higher]
+        local = np.flatnonzero(firing)[higher]
+        self.peak_shift[ids[higher]] = shift[rows, local]
+        self.peak_value[ids[higher]] = value[rows, local]
+        self.peak_expected[ids[higher]] = expected[rows, local]
+
+    def _step_row(self, row: int, hot: np.ndarray, a: np.ndarray, shift: np.ndarray, stat: np.ndarray,
+                  value: np.ndarray, expected: np.ndarray, ts: float, muted: np.ndarray) -> list[Transition]:
+        """The rules applied to one row for the hot metrics; updates ``muted`` with adapted metrics."""
+        cfg = self.config
+        hist = ((self.history[hot] << np.uint64(1)) | a.astype(np.uint64)) & self._window_mask
+        state = self.state[hot]
+        fire = (state != FIRING) & (np.bitwise_count(hist) >= cfg.confirm_k)
+        firing = state == FIRING
+        below = np.where(firing & (np.abs(stat) < cfg.clear_sigma), self.below[hot] + 1, 0)
+        firing_for = np.where(firing, self.firing_for[hot] + 1, 0)
+        clear = firing & (below >= cfg.clear_after)
+        adapt = firing & ~clear & (cfg.adapt_after > 0) & (firing_for >= cfg.adapt_after)
+        ended = clear | adapt
+        self._track_peaks(hot, firing | fire, shift, value, expected)
+        self.history[hot] = np.where(ended, np.uint64(0), hist)
+        self.state[hot] = np.where(fire | (firing & ~ended), FIRING, np.where(ended | (hist == 0), QUIET, PENDING))
+        self.below[hot] = np.where(fire, 0, below)
+        self.firing_for[hot] = np.where(fire, 0, firing_for)
+        muted |= adapt
+        return self._incident_transitions(row, ts, hot, fire, clear, adapt, shift, value, expected)
+
+    def _window_counts(self, active: np.ndarray, columns: np.ndarray) -> np.ndarray:
+        """Active samples among the last ``confirm_m`` at every row (B, k), history included."""
         m = self.config.confirm_m
         B = active.shape[0]
         cum = np.zeros((B + 1, active.shape[1]), dtype=np.int64)
@@ -174,15 +235,15 @@ class AlertTracker:
         head = min(m - 1, B)
         if head:
             bits = (np.uint64(1) << (m - 1 - np.arange(head)).astype(np.uint64)) - np.uint64(1)
-            counts[:head] += np.bitwise_count(self.history[None, :] & bits[:, None])
+            counts[:head] += np.bitwise_count(self.history[columns][None, :] & bits[:, None])
         return counts
 
     def _advance_quietly(self, active: np.ndarray, metrics: np.ndarray) -> None:
-        """Age the history of ``metrics`` (bool mask) over ``active`` rows in which none can fire."""
+        """Age the history of ``metrics`` (ids; data columns of ``active``) over rows in which none can fire."""
         L = active.shape[0]
-        if L == 0 or not metrics.any():
+        if L == 0 or metrics.size == 0:
             return
-        tail = active[-min(L, 63):, metrics][::-1].astype(np.uint64)
+        tail = active[-min(L, 63):][::-1].astype(np.uint64)
         bits = np.bitwise_or.reduce(tail << np.arange(tail.shape[0], dtype=np.uint64)[:, None], axis=0)
         history = (self._shifted(self.history[metrics], L) | bits) & self._window_mask
         self.history[metrics] = history
@@ -194,36 +255,37 @@ class AlertTracker:
             return np.zeros_like(history)
         return (history << np.uint64(samples)) & self._window_mask
 
-    def _track_peaks(self, busy: np.ndarray, live: np.ndarray, shift: np.ndarray, value: np.ndarray,
+    def _track_peaks(self, hot: np.ndarray, live: np.ndarray, shift: np.ndarray, value: np.ndarray,
                      expected: np.ndarray) -> None:
-        idx = busy[live]
-        fresh = self.state[idx] != FIRING
-        higher = fresh | (np.abs(shift[idx]) > np.abs(self.peak_shift[idx]))
-        idx = idx[higher]
-        self.peak_shift[idx] = shift[idx]
-        self.peak_value[idx] = value[idx]
-        self.peak_expected[idx] = expected[idx]
+        """Keep each firing metric's largest |shift| (and its value/expected); data indexed like ``hot``."""
+        fresh = self.state[hot] != FIRING
+        higher = live & (fresh | (np.abs(shift) > np.abs(self.peak_shift[hot])))
+        ids = hot[higher]
+        self.peak_shift[ids] = shift[higher]
+        self.peak_value[ids] = value[higher]
+        self.peak_expected[ids] = expected[higher]
 
-    def _incident_transitions(self, row: int, ts: float, fired: np.ndarray, cleared: np.ndarray,
+    def _incident_transitions(self, row: int, ts: float, hot: np.ndarray, fired: np.ndarray, cleared: np.ndarray,
                               adapted: np.ndarray, shift: np.ndarray, value: np.ndarray,
                               expected: np.ndarray) -> list[Transition]:
+        """Group this row's metric transitions (boolean masks over ``hot``) into incident transitions."""
         out: list[Transition] = []
-        if fired.size:
+        if fired.any():
             onset = self.incident is None
             if onset:
                 self.incident = _Incident(onset_ts=ts)
-            self.incident.members.update(fired.tolist())
-            out.append(Transition("firing", row, self.incident.onset_ts, fired, shift[fired], value[fired],
+            self.incident.members.update(hot[fired].tolist())
+            out.append(Transition("firing", row, self.incident.onset_ts, hot[fired], shift[fired], value[fired],
                                   expected[fired], onset=onset))
         if self.incident is None:
             return out
-        if adapted.size:
-            self.incident.members.difference_update(adapted.tolist())
-            out.append(Transition("adapted", row, self.incident.onset_ts, adapted, shift[adapted],
+        if adapted.any():
+            self.incident.members.difference_update(hot[adapted].tolist())
+            out.append(Transition("adapted", row, self.incident.onset_ts, hot[adapted], shift[adapted],
                                   value[adapted], expected[adapted]))
-        if cleared.size:
-            self.incident.members.difference_update(cleared.tolist())
-            self.incident.resolved.update(cleared.tolist())
+        if cleared.any():
+            self.incident.members.difference_update(hot[cleared].tolist())
+            self.incident.resolved.update(hot[cleared].tolist())
         if not self.incident.members:
             done = np.array(sorted(self.incident.resolved), dtype=np.int64)
             if done.size:

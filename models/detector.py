@@ -25,7 +25,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 from scipy.special import ndtri
 
-from .decision import AlertTracker, DecisionConfig, Transition
+from .decision import QUIET, AlertTracker, DecisionConfig, Transition
 from .dictionary import build_dictionary, column_scales, metric_effect
 from .lasso import debias, projected_residual, solve_projected_lasso
 from .normaliser import MAD_TO_SIGMA, RobustNormaliser, decay_for_halflife
@@ -90,7 +90,7 @@ class BatchResult:
 
     transitions: list[Transition]
     shift_sigma: np.ndarray      # debiased per-metric shift in residual sigmas (0 off the support)
-    expected: np.ndarray         # baseline's expected value in the metric's own units
+    coords: np.ndarray           # (B, r) baseline coordinates; see EntityDetector.expected_values
     residual_norm: np.ndarray    # (B,) norm of the projected residual, in residual sigmas
     n_iter: np.ndarray           # (B,) solver iterations
     converged: np.ndarray        # (B,) solver reached its tolerance
@@ -210,8 +210,7 @@ class EntityDetector:
         self.residual_scale = np.where(np.isfinite(mad) & (mad > 1e-6), mad, 1.0)
 
     def _empty(self, B: int) -> BatchResult:
-        zeros = np.zeros((B, self.n_metrics))
-        return BatchResult([], zeros, np.full((B, self.n_metrics), np.nan), np.zeros(B),
+        return BatchResult([], np.zeros((B, self.n_metrics)), np.zeros((B, self.baseline.rank)), np.zeros(B),
                            np.zeros(B, dtype=np.int64), np.ones(B, dtype=bool))
 
     def _score_and_learn(self, X: np.ndarray, ts: np.ndarray, leading: int = 0) -> BatchResult:
@@ -221,69 +220,85 @@ class EntityDetector:
         Z = norm.transform(X)
         present = np.isfinite(Z)
         modelled = norm.count >= cfg.min_samples      # metrics the model knows well enough
-        observed = present & modelled
-        mask = None if observed.all() else observed
-        scales = column_scales(self.residual_scale, phi)
-        penalty = self.lam * scales
+        # mask None = every entry observed: the common case, which skips all masking passes.
+        mask = None if modelled.all() and present.all() else present & modelled
+        penalty = self.lam * column_scales(self.residual_scale, phi)
         if phi is not None:
             penalty[n:] *= cfg.group_weight
-        Zo = np.where(observed, Z, 0.0)   # the solver fixes unobserved columns at zero
+        Zo = Z if mask is None else np.where(mask, Z, 0.0)   # the solver fixes unobserved columns at 0
         fit = solve_projected_lasso(Zo, U, penalty, phi=phi, mask=mask, init=self.warm_start,
                                     tol=cfg.tol, max_iter=cfg.max_iter, lipschitz=self._lipschitz)
-        residual, coords = projected_residual(Zo, U, fit.coef, phi=phi, mask=mask)
+        coords = fit.coords
         support = np.flatnonzero((fit.coef != 0).any(axis=1))
         coef_unbiased = fit.coef
         if support.size:   # refit the few rows with a shift; the rest keep the LASSO's coordinates
             coef_unbiased = fit.coef.copy()
             sub_mask = None if mask is None else mask[support]
             coef_unbiased[support] = debias(Zo[support], U, fit.coef[support], phi=phi, mask=sub_mask)
+            coords = coords.copy()
             _, coords[support] = projected_residual(Zo[support], U, coef_unbiased[support], phi=phi,
                                                     mask=sub_mask)
         effect = metric_effect(coef_unbiased, phi)
         effect_lasso = metric_effect(fit.coef, phi) if support.size else effect
-        baseline_z = coords @ U.T
-        expected = norm.inverse(baseline_z)
-        scored = norm.count >= cfg.warmup
-        shift_sigma = np.where(observed, effect / self.residual_scale, 0.0)
-        stat = np.where(observed, (effect_lasso + residual) / self.residual_scale, 0.0)
-        active = (effect_lasso != 0) & observed & scored
-        value = np.where(present, X, np.nan)
-        transitions = self.tracker.step(active, shift_sigma, stat, value, expected, ts)
-        self._learn(Z, present, observed, effect, baseline_z, residual, transitions)
+        shift_sigma = effect / self.residual_scale   # zero wherever the metric is unobserved
+        transitions = self._decide(X, ts, effect_lasso, shift_sigma, fit.residual, coords)
+        self._learn(Z, present, mask, effect if support.size else None, coords, fit.residual, transitions)
         if leading:   # rows refer to the caller's batch, which began with warm-up vectors
             transitions = [replace(t, row=t.row + leading) for t in transitions]
         self.warm_start = fit.coef[-1].copy()
         self.samples += B
-        residual_norm = np.sqrt(np.sum((residual / self.residual_scale) ** 2, axis=1))
+        residual_norm = np.sqrt(np.einsum("ij,ij->i", fit.residual, fit.residual / self.residual_scale ** 2))
         self.last_shift_sigma = shift_sigma[-1]
-        return self._pad(leading, BatchResult(transitions, shift_sigma, expected, residual_norm,
+        return self._pad(leading, BatchResult(transitions, shift_sigma, coords, residual_norm,
                                               fit.n_iter, fit.converged))
 
-    def _learn(self, Z: np.ndarray, present: np.ndarray, observed: np.ndarray, effect: np.ndarray,
-               baseline_z: np.ndarray, residual: np.ndarray, transitions: list[Transition]) -> None:
-        cleaned = Z - effect
-        # Baseline: cleaned vectors, holes filled by the baseline's own prediction; skip rows
-        # that are mostly holes (they would only pull the basis towards its own guess).
-        complete = np.where(observed, cleaned, baseline_z)
-        enough = observed.mean(axis=1) >= 0.5
-        self.baseline.update(complete[enough])
-        # Residual scales: the LASSO residual is winsorised at lambda*d, hence the Huber factor.
-        self._update_residual_scale(residual, observed)
-        self.normaliser.update(np.where(present, cleaned, 0.0), present)
+    def _decide(self, X: np.ndarray, ts: np.ndarray, effect_lasso: np.ndarray, shift_sigma: np.ndarray,
+                residual: np.ndarray, coords: np.ndarray) -> list[Transition]:
+        """Feed the decision layer with just the metrics that are active or not quiet."""
+        scored = self.normaliser.count >= self.config.warmup
+        active = effect_lasso != 0
+        cols = np.flatnonzero((active.any(axis=0) & scored) | (self.tracker.state != QUIET))
+        d = self.residual_scale[cols]
+        stat = (effect_lasso[:, cols] + residual[:, cols]) / d
+        expected = self.normaliser.inverse_columns(coords @ self.baseline.U[cols].T, cols)
+        return self.tracker.step(active[:, cols] & scored[cols], shift_sigma[:, cols], stat, X[:, cols],
+                                 expected, ts, columns=cols)
+
+    def expected_values(self, coords: np.ndarray) -> np.ndarray:
+        """The baseline's expected value (B, n), in the metrics' own units, for coordinates ``coords``."""
+        return self.normaliser.inverse(coords @ self.baseline.U.T)
+
+    def _learn(self, Z: np.ndarray, present: np.ndarray, mask: np.ndarray | None, effect: np.ndarray | None,
+               coords: np.ndarray, residual: np.ndarray, transitions: list[Transition]) -> None:
+        cleaned = Z if effect is None else Z - effect
+        if mask is None:
+            self.baseline.update(cleaned)
+        else:
+            # Holes filled by the baseline's own prediction; rows that are mostly holes are
+            # skipped (they would only pull the basis towards its own guess).
+            complete = np.where(mask, cleaned, coords @ self.baseline.U.T)
+            self.baseline.update(complete[mask.mean(axis=1) >= 0.5])
+        self._update_residual_scale(residual, mask)
+        self.normaliser.update(cleaned, present)
         for t in transitions:
             if t.kind == "adapted":   # the shift becomes the new normal
                 self.normaliser.accept_shift(t.metrics, effect[t.row, t.metrics])
                 self.warm_start[t.metrics] = 0.0
 
-    def _update_residual_scale(self, residual: np.ndarray, observed: np.ndarray) -> None:
+    def _update_residual_scale(self, residual: np.ndarray, mask: np.ndarray | None) -> None:
+        """Exponentially weighted mean square of the residual, divided by the Huber factor
+        (the LASSO residual is winsorised at lambda * d by its optimality conditions)."""
         B = residual.shape[0]
         decay = self._scale_decay
-        weights = (1.0 - decay) * decay ** np.arange(B - 1, -1, -1)[:, None] * observed
-        kept = np.prod(np.where(observed, decay, 1.0), axis=0)
-        moment = (weights * residual ** 2).sum(axis=0) / self._beta
-        total = weights.sum(axis=0) + kept
-        variance = (kept * self.residual_scale ** 2 + moment) / total
-        self.residual_scale = np.sqrt(np.maximum(variance, 1e-12))
+        weights = (1.0 - decay) * decay ** np.arange(B - 1, -1, -1)
+        squares = residual * residual     # zero at unobserved entries
+        moment = (weights @ squares) / self._beta
+        if mask is None:
+            kept, total = decay ** B, weights.sum() + decay ** B
+        else:
+            kept = decay ** mask.sum(axis=0)
+            total = weights @ mask + kept
+        self.residual_scale = np.sqrt(np.maximum((kept * self.residual_scale ** 2 + moment) / total, 1e-12))
 
     def _pad(self, leading: int, result: BatchResult) -> BatchResult:
         if not leading:
@@ -291,4 +306,4 @@ class EntityDetector:
         empty = self._empty(leading)
         return BatchResult(result.transitions,
                            *(np.concatenate([getattr(empty, f), getattr(result, f)])
-                             for f in ("shift_sigma", "expected", "residual_norm", "n_iter", "converged")))
+                             for f in ("shift_sigma", "coords", "residual_norm", "n_iter", "converged")))

@@ -74,13 +74,18 @@ class LassoResult:
 
     ``coef``: (B, p) solution; ``n_iter``: (B,) FISTA iterations spent on the
     sample (0 if the warm start was already optimal); ``gap``: (B,) duality
-    gap certified for ``coef``; ``converged``: (B,) ``gap <= tol*||P_b z_b||^2``.
+    gap certified for ``coef``; ``converged``: (B,) ``gap <= tol*||P_b z_b||^2``;
+    ``residual``: (B, n) ``P_b(z_b - Phi s_b)`` and ``coords``: (B, r) baseline
+    coordinates at ``coef`` (as :func:`projected_residual` returns them), so
+    callers need not recompute them.
     """
 
     coef: np.ndarray
     n_iter: np.ndarray
     gap: np.ndarray
     converged: np.ndarray
+    residual: np.ndarray
+    coords: np.ndarray
 
 
 # --------------------------------------------------------------------------
@@ -216,6 +221,13 @@ def _batch_rows(x, name: str, B: int, p: int, *, allow_inf: bool = False) -> np.
     return np.array(np.broadcast_to(a, (B, p)))
 
 
+def _rows(a: np.ndarray | None, idx: np.ndarray) -> np.ndarray | None:
+    """Rows ``idx`` of a per-sample array; a shared (1, p) row (or None) is returned as is."""
+    if a is None or a.shape[0] == 1:
+        return a
+    return a[idx]
+
+
 def _check_coef(S, prob: _Problem) -> np.ndarray:
     S = _as_float_array(S, "S", (2,))
     want = (prob.Z.shape[0], prob.p)
@@ -231,6 +243,22 @@ def _check_coef(S, prob: _Problem) -> np.ndarray:
 # --------------------------------------------------------------------------
 
 
+def _dual_norm(C, inv_pen, zero_pen):
+    """max_j |C_j| / penalty_j per row: the residual is dual feasible iff this is <= 1."""
+    dnorm = np.max(np.abs(C) * inv_pen, axis=1, initial=0.0)
+    if zero_pen is not None:
+        # penalty 0: the dual constraint is C_j = 0 exactly.
+        dnorm = np.where(np.any(zero_pen & (C != 0), axis=1), np.inf, dnorm)
+    return dnorm
+
+
+def _dual_value(R, Y, rr, dnorm):
+    """Dual objective at theta = a R, a = min(1, 1/dnorm), the standard feasible rescaling."""
+    with np.errstate(divide="ignore"):
+        a = np.minimum(1.0, 1.0 / dnorm)
+    return a * np.einsum("ij,ij->i", R, Y) - 0.5 * a * a * rr
+
+
 def _primal_dual(R, C, X, Y, pen_fin, inv_pen, zero_pen):
     """Primal value at X and dual value at the rescaled residual, per row.
 
@@ -242,14 +270,7 @@ def _primal_dual(R, C, X, Y, pen_fin, inv_pen, zero_pen):
     """
     rr = np.einsum("ij,ij->i", R, R)
     primal = 0.5 * rr + np.einsum("ij,ij->i", pen_fin, np.abs(X))
-    dnorm = np.max(np.abs(C) * inv_pen, axis=1, initial=0.0)
-    if zero_pen is not None:
-        # penalty 0: the dual constraint is C_j = 0 exactly.
-        dnorm = np.where(np.any(zero_pen & (C != 0), axis=1), np.inf, dnorm)
-    with np.errstate(divide="ignore"):
-        a = np.minimum(1.0, 1.0 / dnorm)
-    dual = a * np.einsum("ij,ij->i", R, Y) - 0.5 * a * a * rr
-    return primal, dual
+    return primal, _dual_value(R, Y, rr, _dual_norm(C, inv_pen, zero_pen))
 
 
 # --------------------------------------------------------------------------
@@ -313,7 +334,10 @@ def solve_projected_lasso(
             raise ValueError(f"lipschitz must be a positive finite number, got {lipschitz!r}")
         L = float(lipschitz)
 
-    pen = _batch_rows(penalty, "penalty", B, p, allow_inf=True)
+    # Penalty-derived arrays are (B, p), or (1, p) when every sample shares them
+    # (1-D penalty, nothing unobserved): the common case then costs no (B, p) passes.
+    shared = np.ndim(penalty) == 1 and prob.col_ok is None
+    pen = _batch_rows(penalty, "penalty", 1 if shared else B, p, allow_inf=True)
     if np.any(pen < 0):
         raise ValueError("penalty must be non-negative")
     frozen = np.isinf(pen)
@@ -327,53 +351,63 @@ def solve_projected_lasso(
     if zero_pen is not None:
         inv_pen[zero_pen] = 0.0
 
-    X = np.zeros((B, p)) if init is None else _batch_rows(init, "init", B, p)
-    X[frozen] = 0.0
+    if init is None:
+        X = np.zeros((B, p))
+    else:
+        X = _batch_rows(init, "init", B, p)
+        if frozen.any():
+            X[np.broadcast_to(frozen, X.shape)] = 0.0
 
     # Before iterating: primal and dual values at two candidates, zero and
     # the warm start. At zero the residual is P z, so its gap is nearly free
     # (no extra product for phi None); a sample whose solution is zero thus
     # costs no iteration even when its warm start is stale.
-    Y, _ = _project(prob.Z, prob.U, prob.m, prob.ginv)
+    Y, W0 = _project(prob.Z, prob.U, prob.m, prob.ginv)
     C0 = prob.phi_t(Y)
-    zeros = np.zeros((B, p))
-    p_best, d_best = _primal_dual(Y, C0, zeros, Y, pen_fin, inv_pen, zero_pen)
-    d_best = np.maximum(d_best, 0.0)  # theta = 0 is always dual feasible
-    thresh = tol * np.einsum("ij,ij->i", Y, Y)
-    R, C = Y.copy(), C0.copy()
+    yy = np.einsum("ij,ij->i", Y, Y)
+    dnorm0 = _dual_norm(C0, inv_pen, zero_pen)
+    p_best = 0.5 * yy
+    d_best = np.maximum(_dual_value(Y, Y, yy, dnorm0), 0.0)  # theta = 0 is always dual feasible
+    # Zero is accepted only when it is exactly optimal (|Phi^T P z| <= penalty everywhere):
+    # a small relative gap would otherwise hide a coordinate just over its threshold, and the
+    # support is the detector's decision.
+    zero_exact = dnorm0 <= 1.0
+    thresh = tol * yy
+    R, C = Y, C0
     warm = np.flatnonzero(np.any(X != 0, axis=1))
     if warm.size:
         m, ginv = prob.rows(warm)
         Rw, _ = _project(prob.Z[warm] - prob.phi_mul(X[warm]), prob.U, m, ginv)
         Cw = prob.phi_t(Rw)
-        zp = None if zero_pen is None else zero_pen[warm]
-        Pw, Dw = _primal_dual(Rw, Cw, X[warm], Y[warm], pen_fin[warm], inv_pen[warm], zp)
+        Pw, Dw = _primal_dual(Rw, Cw, X[warm], Y[warm], _rows(pen_fin, warm), _rows(inv_pen, warm),
+                              _rows(zero_pen, warm))
         d_best[warm] = np.maximum(d_best[warm], Dw)
         # Iterate (and report) from the better of the two candidates, so the
         # result is never worse than either of them.
         better = Pw < p_best[warm]
         p_best[warm] = np.minimum(Pw, p_best[warm])
         X[warm[~better]] = 0.0
+        R, C = Y.copy(), C0.copy()
         R[warm[better]] = Rw[better]
         C[warm[better]] = Cw[better]
 
-    coef = X.copy()
+    coef = X  # rows still to iterate are copied out below; results are written back here
     gap = p_best - d_best
-    # Zero is accepted only when it is exactly optimal (|Phi^T P z| <= penalty everywhere):
-    # a small relative gap would otherwise hide a coordinate just over its threshold, and the
-    # support is the detector's decision.
-    zero_exact = np.max(np.abs(C0) * inv_pen, axis=1, initial=0.0) <= 1.0
-    if zero_pen is not None:
-        zero_exact &= ~np.any(zero_pen & (C0 != 0), axis=1)
     converged = (gap <= thresh) & (zero_exact | np.any(X != 0, axis=1))
     n_iter = np.zeros(B, dtype=np.int64)
 
     act = np.flatnonzero(~converged)
     if act.size:
-        _fista(prob, act, X[act], R[act], C[act], Y[act], pen[act], pen_fin[act], inv_pen[act],
-               None if zero_pen is None else zero_pen[act], thresh[act], p_best[act], d_best[act],
+        _fista(prob, act, X[act], R[act], C[act], Y[act], _rows(pen, act), _rows(pen_fin, act),
+               _rows(inv_pen, act), _rows(zero_pen, act), thresh[act], p_best[act], d_best[act],
                L, max_iter, coef, gap, converged, n_iter)
-    return LassoResult(coef=coef, n_iter=n_iter, gap=gap, converged=converged)
+    residual, coords = Y, W0   # the residual at zero; rows with a support are recomputed
+    moved = np.flatnonzero(np.any(coef != 0, axis=1))
+    if moved.size:
+        residual, coords = Y.copy(), W0.copy()
+        m, ginv = prob.rows(moved)
+        residual[moved], coords[moved] = _project(prob.Z[moved] - prob.phi_mul(coef[moved]), prob.U, m, ginv)
+    return LassoResult(coef=coef, n_iter=n_iter, gap=gap, converged=converged, residual=residual, coords=coords)
 
 
 def _fista(prob, act, X, R, C, Y, pen, pen_fin, inv_pen, zero_pen, thresh, p_best, d_best,
@@ -427,9 +461,8 @@ def _fista(prob, act, X, R, C, Y, pen, pen_fin, inv_pen, zero_pen, thresh, p_bes
         act = act[keep]
         X, Xp, C, Cp, Xb = X[keep], Xp[keep], C[keep], Cp[keep], Xb[keep]
         Za, Y, thresh = Za[keep], Y[keep], thresh[keep]
-        pen, thr, pen_fin, inv_pen = pen[keep], thr[keep], pen_fin[keep], inv_pen[keep]
-        if zero_pen is not None:
-            zero_pen = zero_pen[keep]
+        pen, thr, pen_fin, inv_pen = _rows(pen, keep), _rows(thr, keep), _rows(pen_fin, keep), _rows(inv_pen, keep)
+        zero_pen = _rows(zero_pen, keep)
         p_best, d_best, t = p_best[keep], d_best[keep], t[keep]
         if m is not None:
             m, ginv = m[keep], ginv[keep]

@@ -113,9 +113,14 @@ class RobustNormaliser:
 
     def inverse(self, Z: np.ndarray) -> np.ndarray:
         """Map normalised values back to the metrics' own units."""
-        F = self.loc + np.asarray(Z, dtype=float) * self.scale
-        if self.log_mask.any():
-            F[..., self.log_mask] = symexp(F[..., self.log_mask])
+        return self.inverse_columns(Z, slice(None))
+
+    def inverse_columns(self, Z: np.ndarray, columns: np.ndarray | slice) -> np.ndarray:
+        """:meth:`inverse` for the metrics ``columns`` only (Z is (B, k))."""
+        F = self.loc[columns] + np.asarray(Z, dtype=float) * self.scale[columns]
+        logs = self.log_mask[columns]
+        if logs.any():
+            F[..., logs] = symexp(F[..., logs])
         return F
 
     def update(self, Z_clean: np.ndarray, observed: np.ndarray) -> None:

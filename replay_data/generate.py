@@ -8,30 +8,40 @@ Scenario (fictional): Brinehaven Ferry Line sells crossings to the Skerrow
 Isles. Four instances are scraped every 30 s: ``booking-api-1`` and
 ``booking-api-2`` (the HTTP API tier), ``seatmap-worker-1`` (a queue consumer
 that allocates seats and vehicle-deck lanes) and ``manifest-db-1`` (the
-passenger manifest database), 35-43 metrics each.
+passenger manifest database), 33-40 metrics each, 1500 samples per entity.
 
-Data model, per entity and metric j (exactly the model shiftsieve assumes)::
+Data model, per entity and metric j (the model shiftsieve assumes)::
 
-    x_j(t) = base_j + sigma_j * (sum_f L_jf * factor_f(t) + eps_j(t)) + fault_j(t)
+    g_j(x_j(t)) = g_j(base_j) + sigma_j * (sum_f L_jf * factor_f(t) + eps_j(t) + fault_j(t))
 
-- ``sigma_j`` is the metric's noise std; every shift in the labels is in
-  units of it. ``eps`` is N(0, 1), or Student-t(4) scaled to unit variance for
-  the heavy-tailed metrics (p99 latencies, GC pauses, bytes).
+- ``g_j`` is log1p for metrics named ``*_ms``, ``*_seconds``, ``*_bytes``
+  (latencies, lags, memory: multiplicative, never negative; the same patterns
+  as the model's default ``log_metrics``, whose symmetric log is log1p for
+  positive values) and the identity for the rest (rates, ratios, counts).
+- ``sigma_j`` is the noise std on that scale (relative for log1p metrics);
+  every shift in the labels is in units of it, so faults are added on that
+  scale too. ``eps`` is N(0, 1), or a standardised log-normal (right-skewed,
+  occasional large upward spikes) for the heavy-tailed metrics.
 - Five shared factors: ``traffic`` (a day compressed into 560 samples, 0 at
   night to about 1 at the peak, plus a small wander), ``batch`` (a fare-table
   sync every 180 samples, 20 samples long), ``drift`` (slow, unit std),
   ``runtime`` (GC / checkpoint activity, AR(1), unit std), ``mix`` (share of
-  vehicle bookings, slow AR(1), unit std). Loadings are tens of sigmas, so the
-  shared movement alone trips any per-metric threshold.
-- The shared part is linear in the value itself (no log space), so a bigger
-  surge stays exactly on the same shared directions.
+  vehicle bookings, slow AR(1), unit std). Loadings are up to tens of sigmas,
+  so the shared movement alone trips any per-metric threshold.
+- The shared part is linear on each metric's scale, so a bigger surge stays
+  exactly on the same shared directions. (Generated linear but modelled on a
+  log scale, or the reverse, a surge of twice the usual traffic would bend
+  away from them by several sigmas on some metrics.)
+- Values are rounded to a power of ten between 1/20 and 1/2 of the metric's
+  smallest noise std, which keeps the files small without changing the noise.
 
 Labels file ``NAME.labels.json`` (one JSON object, keys sorted):
 
 - ``scenario`` (str, the file stem), ``description`` (str),
   ``step_seconds`` (float), ``start`` / ``end`` (float: first and last ts in
   the file), ``vectors`` (int: lines in the .jsonl.gz), ``entities``
-  ({entity: service}).
+  ({entity: service}), ``log_suffixes`` (metric-name endings whose sigma is on
+  the log1p scale).
 - ``incidents``: what a detector must find, each ``{"entity", "start", "end",
   "metrics", "shift_sigma", "kind"}``: ``start`` / ``end`` are the ts of the
   entity's first and last faulty sample (inclusive); ``metrics`` the shifted
@@ -73,32 +83,44 @@ DAY_SAMPLES = 560
 BATCH_EVERY, BATCH_FIRST, BATCH_LEN = 180, 100, 20
 FACTORS = ("traffic", "batch", "drift", "runtime", "mix")
 HEAVY_SHAPE = 0.6  # log-normal shape of the heavy-tailed noise: skewness about 2.3
+LOG_SUFFIXES = ("_ms", "_seconds", "_bytes")  # generated on a log1p scale (the model's default log_metrics)
 INCIDENT_NAMES = ("surge", "single_shift", "multi_shift", "ramp")
 
 
 @dataclass(frozen=True)
 class Metric:
-    """One metric: value = base + sigma * (loadings . factors + noise)."""
+    """One metric: scale(value) = scale(base) + sigma * (loadings . factors + noise + fault).
+
+    The scale is the identity, or log1p for `log` metrics (sigma then is relative).
+    """
 
     name: str
     base: float
     sigma: float
     loadings: tuple[float, ...]
-    heavy: bool = False
+    heavy: bool
+    log: bool
+
+    def values(self, excursion: np.ndarray) -> np.ndarray:
+        """Metric values from an excursion in sigma units."""
+        if self.log:
+            return np.expm1(np.log1p(self.base) + self.sigma * excursion)
+        return self.base + self.sigma * excursion
 
 
 def _m(name: str, base: float, sigma: float, heavy: bool = False, **load: float) -> Metric:
     """Catalog shorthand; loadings by factor initial (T, B, D, R, M), in sigmas."""
-    return Metric(name, base, sigma, tuple(float(load.get(f[0].upper(), 0.0)) for f in FACTORS), heavy)
+    return Metric(name, base, sigma, tuple(float(load.get(f[0].upper(), 0.0)) for f in FACTORS),
+                  heavy, name.endswith(LOG_SUFFIXES))
 
 
 _PROCESS = [
     _m("cpu_util_ratio", 0.13, 0.008, T=35, B=2, R=1.5),
     _m("cpu_throttled_ratio", 0.0065, 0.0005, T=12, R=1),
     _m("load_avg_1m", 0.6, 0.05, T=30, B=4),
-    _m("process_resident_memory_bytes", 1.15e9, 4e6, T=6, D=2, R=6),
-    _m("heap_used_bytes", 5.2e8, 6e6, T=10, D=4, R=18),
-    _m("gc_pause_p99_ms", 45.0, 1.5, heavy=True, T=4, R=5),
+    _m("process_resident_memory_bytes", 1.15e9, 0.0035, T=6, D=2, R=6),
+    _m("heap_used_bytes", 5.2e8, 0.012, T=10, D=4, R=18),
+    _m("gc_pause_p99_ms", 45.0, 0.03, heavy=True, T=4, R=5),
     _m("gc_collections_per_s", 0.5, 0.02, T=14, R=5),
     _m("gc_cpu_ratio", 0.012, 0.0005, T=8, R=5),
     _m("threads_live", 110.0, 1.5, T=10, D=2),
@@ -108,9 +130,9 @@ _PROCESS = [
 _DB_CLIENT = [
     _m("db_pool_active_conns", 4.0, 0.4, T=18, B=3),
     _m("db_pool_idle_conns", 34.0, 0.5, T=-16, B=-3),
-    _m("db_pool_wait_p99_ms", 2.5, 0.25, T=8, B=4),
-    _m("db_query_lat_p50_ms", 2.8, 0.12, T=5, B=8, M=1),
-    _m("db_query_lat_p99_ms", 16.0, 1.0, heavy=True, T=5, B=8),
+    _m("db_pool_wait_p99_ms", 2.5, 0.055, T=8, B=4),
+    _m("db_query_lat_p50_ms", 2.8, 0.03, T=5, B=8, M=1),
+    _m("db_query_lat_p99_ms", 16.0, 0.055, heavy=True, T=5, B=8),
     _m("db_queries_per_s", 140.0, 6.0, T=60, M=3),
 ]
 
@@ -127,37 +149,37 @@ CATALOG: dict[str, list[Metric]] = {
     "booking-api": _PROCESS + _DB_CLIENT + _HOST_IO + [
         _m("http_requests_per_s", 55.0, 2.5, T=70, M=2),
         _m("http_inflight_requests", 6.0, 0.4, T=25, R=1.5),
-        _m("http_req_lat_p50_ms", 32.0, 1.2, T=10, B=3, R=2, M=3),
-        _m("http_req_lat_p90_ms", 75.0, 3.0, T=10, B=3, R=2, M=3),
-        _m("http_req_lat_p99_ms", 250.0, 9.0, heavy=True, T=8, B=3, R=2, M=2),
+        _m("http_req_lat_p50_ms", 32.0, 0.035, T=10, B=3, R=2, M=3),
+        _m("http_req_lat_p90_ms", 75.0, 0.035, T=10, B=3, R=2, M=3),
+        _m("http_req_lat_p99_ms", 250.0, 0.035, heavy=True, T=8, B=3, R=2, M=2),
         _m("http_5xx_ratio", 0.0035, 0.0003, T=4, M=1),
         _m("http_4xx_ratio", 0.021, 0.0012, T=3, M=3),
-        _m("http_tls_handshake_p99_ms", 9.0, 0.6, T=6),
+        _m("http_tls_handshake_p99_ms", 9.0, 0.06, T=6),
         _m("cache_hit_ratio", 0.9, 0.004, T=-2, D=3, M=-3),
         _m("cache_evictions_per_s", 3.8, 0.2, T=7, D=3),
         _m("sessions_active", 180.0, 12.0, T=65),
         _m("bookings_confirmed_per_s", 1.2, 0.06, T=45, M=-2),
         _m("upstream_payment_req_per_s", 4.5, 0.35, T=45),
-        _m("upstream_payment_lat_p50_ms", 110.0, 5.0, T=4, M=2),
-        _m("upstream_payment_lat_p99_ms", 520.0, 25.0, heavy=True, T=4, M=2),
+        _m("upstream_payment_lat_p50_ms", 110.0, 0.045, T=4, M=2),
+        _m("upstream_payment_lat_p99_ms", 520.0, 0.05, heavy=True, T=4, M=2),
         _m("upstream_payment_timeouts_per_s", 0.28, 0.03, T=6),
-        _m("upstream_seatmap_lat_p50_ms", 14.0, 0.7, T=6, B=5),
-        _m("upstream_seatmap_lat_p99_ms", 55.0, 3.5, T=6, B=5),
+        _m("upstream_seatmap_lat_p50_ms", 14.0, 0.045, T=6, B=5),
+        _m("upstream_seatmap_lat_p99_ms", 55.0, 0.06, T=6, B=5),
     ],
     "seatmap-worker": _PROCESS + _DB_CLIENT + _HOST_IO + [
         _m("queue_depth_msgs", 36.0, 3.0, T=35, B=10),
         _m("queue_consume_per_s", 30.0, 2.0, T=65),
         _m("queue_produce_per_s", 29.0, 2.0, T=64),
-        _m("queue_lag_seconds", 1.0, 0.1, T=14, B=10),
-        _m("job_duration_p50_ms", 20.0, 0.9, T=8, B=6, M=4),
-        _m("job_duration_p99_ms", 150.0, 6.0, heavy=True, T=6, B=5, M=3),
+        _m("queue_lag_seconds", 1.0, 0.05, T=10, B=10),
+        _m("job_duration_p50_ms", 20.0, 0.04, T=8, B=6, M=4),
+        _m("job_duration_p99_ms", 150.0, 0.04, heavy=True, T=6, B=5, M=3),
         _m("job_retries_per_s", 0.35, 0.04, T=7),
         _m("job_failures_ratio", 0.005, 0.0004, T=3),
-        _m("seat_lock_wait_p99_ms", 7.0, 0.6, T=10, B=4),
+        _m("seat_lock_wait_p99_ms", 7.0, 0.07, T=10, B=4),
         _m("lane_allocations_per_s", 7.5, 0.35, T=40, M=3),
         _m("seats_allocated_per_s", 32.0, 1.6, T=55, M=-2),
-        _m("upstream_manifest_lat_p50_ms", 4.0, 0.2, T=5, B=10),
-        _m("upstream_manifest_lat_p99_ms", 28.0, 1.8, heavy=True, T=5, B=10),
+        _m("upstream_manifest_lat_p50_ms", 4.0, 0.04, T=5, B=10),
+        _m("upstream_manifest_lat_p99_ms", 28.0, 0.06, heavy=True, T=5, B=10),
     ],
     "manifest-db": [
         _m("db_connections_active", 18.0, 1.2, T=35, B=6),
@@ -166,13 +188,13 @@ CATALOG: dict[str, list[Metric]] = {
         _m("db_rollbacks_per_s", 1.8, 0.15, T=6, M=1),
         _m("db_rows_read_per_s", 9.0e3, 350.0, T=55, B=40, M=4),
         _m("db_rows_written_per_s", 700.0, 50.0, T=40, B=60),
-        _m("db_query_lat_p50_ms", 1.6, 0.07, T=5, B=10),
-        _m("db_query_lat_p99_ms", 14.0, 0.9, heavy=True, T=5, B=12),
+        _m("db_query_lat_p50_ms", 1.6, 0.025, T=5, B=10),
+        _m("db_query_lat_p99_ms", 14.0, 0.055, heavy=True, T=5, B=12),
         _m("db_lock_waits_per_s", 0.9, 0.1, T=8, B=6),
         _m("db_buffer_hit_ratio", 0.985, 0.0008, T=-2, B=-8, D=1),
         _m("db_checkpoint_write_bytes_per_s", 1.5e7, 3e5, T=3, B=4, R=12),
         _m("db_wal_bytes_per_s", 2.2e6, 1.6e5, T=40, B=35),
-        _m("db_replication_lag_seconds", 0.3, 0.02, T=4, B=10, R=2),
+        _m("db_replication_lag_seconds", 0.3, 0.015, T=4, B=10, R=2),
         _m("db_temp_bytes_per_s", 6e5, 3e4, heavy=True, B=30),
         _m("db_seq_scans_per_s", 4.0, 0.4, T=3, B=25),
         _m("db_index_scans_per_s", 1200.0, 60.0, T=60, M=2),
@@ -181,14 +203,14 @@ CATALOG: dict[str, list[Metric]] = {
         _m("cpu_util_ratio", 0.14, 0.008, T=30, B=12, R=2),
         _m("cpu_iowait_ratio", 0.065, 0.003, T=3, B=8, R=4),
         _m("load_avg_1m", 0.9, 0.08, T=30, B=12),
-        _m("process_resident_memory_bytes", 6.2e9, 8e6, T=3, D=6, R=2),
-        _m("fs_page_cache_bytes", 1.8e10, 5e7, B=-3, D=6),
+        _m("process_resident_memory_bytes", 6.2e9, 0.0013, T=3, D=6, R=2),
+        _m("fs_page_cache_bytes", 1.8e10, 0.0028, B=-3, D=6),
         _m("disk_read_bytes_per_s", 7.5e6, 5e5, T=10, B=45, M=2),
         _m("disk_write_bytes_per_s", 2.8e7, 8e5, T=30, B=25, R=8),
         _m("disk_io_util_ratio", 0.18, 0.012, T=10, B=20, R=2),
-        _m("disk_read_lat_ms", 1.2, 0.08, T=2, B=10),
-        _m("disk_write_lat_ms", 5.0, 0.15, heavy=True, B=8, R=3),
-        _m("disk_free_bytes", 4.2e11, 2e8, D=-10),
+        _m("disk_read_lat_ms", 1.2, 0.035, T=2, B=10),
+        _m("disk_write_lat_ms", 5.0, 0.03, heavy=True, B=8, R=3),
+        _m("disk_free_bytes", 4.2e11, 0.0005, D=-10),
         _m("net_rx_bytes_per_s", 8e6, 5e5, T=55, B=10),
         _m("net_tx_bytes_per_s", 3.4e7, 1.5e6, T=55, B=20, M=3),
         _m("tcp_connections_established", 95.0, 1.5, T=20),
@@ -219,7 +241,7 @@ _BY_NAME = {e.name: e for e in ENTITIES}
 
 @dataclass(frozen=True)
 class Fault:
-    """A labelled shift added to metric values, samples first..last inclusive."""
+    """A labelled shift, in sigmas on each metric's scale, over samples first..last inclusive."""
 
     entity: str
     first: int
@@ -263,6 +285,8 @@ class Gap:
 
 @dataclass(frozen=True)
 class Scenario:
+    """One incident file: its seed, story and what is injected (sample indices per entity)."""
+
     name: str
     seed: int
     description: str
@@ -280,8 +304,9 @@ SCENARIOS = (
     Scenario(
         "surge", 101,
         "Skerrow folk-festival ticket release: traffic jumps to nearly twice the day's peak within "
-        "three minutes, holds for half an hour and fades over the next 45 minutes. Every metric moves with traffic exactly as it "
-        "does the rest of the day, only more; there is no fault, so no alert is correct.",
+        "three minutes, holds for half an hour and fades over the next 45 minutes. Every metric "
+        "moves with traffic exactly as it does the rest of the day, only more; there is no fault, "
+        "so no alert is correct.",
         surge=Surge(start=1330, height=0.95),
     ),
     Scenario(
@@ -363,8 +388,8 @@ def _global_factors(rng: np.random.Generator, n: int) -> dict[str, np.ndarray]:
     return {"traffic": traffic, "batch": batch, "mix": _standardise(_ar1(rng, n, 0.99))}
 
 
-def _entity_values(rng: np.random.Generator, shared: dict[str, np.ndarray], metrics: list[Metric]) -> np.ndarray:
-    """Metric x sample matrix of clean values plus noise (no faults)."""
+def _excursions(rng: np.random.Generator, shared: dict[str, np.ndarray], metrics: list[Metric]) -> np.ndarray:
+    """Metric x sample matrix of shared movement plus noise, in each metric's sigma units."""
     n = shared["traffic"].size
     own = {
         "traffic": shared["traffic"] + 0.015 * _ar1(rng, n, 0.9),
@@ -379,14 +404,13 @@ def _entity_values(rng: np.random.Generator, shared: dict[str, np.ndarray], metr
     for j, m in enumerate(metrics):
         if m.heavy:
             noise[j] = _standardise(np.exp(HEAVY_SHAPE * noise[j]))
-    base = np.array([m.base for m in metrics])[:, None]
-    sigma = np.array([m.sigma for m in metrics])[:, None]
-    return base + sigma * (loadings @ factors + noise)
+    return loadings @ factors + noise
 
 
-def _decimals(sigma: float) -> int:
-    """Decimal places that keep the rounding quantum between sigma/20 and sigma/2."""
-    return -int(np.floor(np.log10(sigma / 2.0)))
+def _decimals(metric: Metric, values: np.ndarray) -> int:
+    """Decimal places that keep the rounding quantum between 1/20 and 1/2 of the smallest noise std."""
+    noise = metric.sigma * (1.0 + values.min()) if metric.log else metric.sigma
+    return -int(np.floor(np.log10(noise / 2.0)))
 
 
 def _ts(entity: Entity, sample: int) -> float:
@@ -399,6 +423,7 @@ def build(scenario: Scenario) -> tuple[list[dict], dict]:
     shared = _global_factors(rng, SAMPLES)
     labels: dict = {"scenario": scenario.name, "description": scenario.description,
                     "step_seconds": STEP_SECONDS, "entities": {e.name: e.service for e in ENTITIES},
+                    "log_suffixes": list(LOG_SUFFIXES),
                     "incidents": [], "surges": [], "transients": [], "gaps": [], "late_metrics": []}
     if scenario.surge is not None:
         s = scenario.surge
@@ -411,23 +436,24 @@ def build(scenario: Scenario) -> tuple[list[dict], dict]:
     for entity in ENTITIES:
         metrics = CATALOG[entity.service]
         index = {m.name: j for j, m in enumerate(metrics)}
-        values = _entity_values(rng, shared, metrics)
+        excursion = _excursions(rng, shared, metrics)
         for f in (f for f in scenario.faults if f.entity == entity.name):
             width = f.last - f.first + 1
             shape = np.arange(1, width + 1) / width if f.kind == "ramp" else np.ones(width)
             for name, size in f.shift_sigma.items():
-                values[index[name], f.first:f.last + 1] += size * metrics[index[name]].sigma * shape
+                excursion[index[name], f.first:f.last + 1] += size * shape
             labels["incidents"].append({"entity": f.entity, "start": _ts(entity, f.first), "end": _ts(entity, f.last),
                                         "metrics": sorted(f.shift_sigma), "shift_sigma": dict(f.shift_sigma),
                                         "kind": f.kind})
         for name, sample, metric, size in (t for t in scenario.transients if t[0] == entity.name):
-            values[index[metric], sample] += size * metrics[index[metric]].sigma
+            excursion[index[metric], sample] += size
             labels["transients"].append({"entity": name, "ts": _ts(entity, sample), "metric": metric,
                                          "shift_sigma": size})
+        values = np.stack([m.values(excursion[j]) for j, m in enumerate(metrics)])
         _check_range(scenario.name, entity.name, metrics, values)
         missing = [(g.first, g.last, g.metrics, g.how) for g in scenario.gaps if g.entity == entity.name]
         first_seen = {metric: sample for name, metric, sample in scenario.late if name == entity.name}
-        decimals = [_decimals(m.sigma) for m in metrics]
+        decimals = [_decimals(m, values[j]) for j, m in enumerate(metrics)]
         for i in range(SAMPLES):
             if any(a <= i <= b and not names for a, b, names, _ in missing):
                 continue

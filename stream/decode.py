@@ -11,11 +11,15 @@ The decode layer never raises anything but `DecodeError` for bad input; its
 - A whole message is rejected only when it cannot give a usable vector: too
   large (checked before parsing), not JSON, not an object, bad or missing
   `ts` / `entity`, `metrics` missing, not an object or empty ("no_metrics":
-  an empty vector carries no information and usually means a producer bug),
-  too many metrics, or malformed `labels`.
+  an empty vector carries no information and usually means a producer bug;
+  also when every entry has a bad name), too many metrics, or malformed
+  `labels` (must be string -> string; sizes bounded only by max_bytes).
 - A single bad metric loses only itself: a value that is not a number (string,
   boolean, array, object), not finite, or beyond `max_abs_value` becomes
-  missing (None) and is listed in `Vector.invalid` as (name, reason). An entry
+  missing (None) and is listed in `Vector.invalid` as (name, reason):
+  "not_a_number", "non_finite" (NaN, infinities, and JSON numbers beyond
+  double range such as 1e400), "out_of_range" (|x| > max_abs_value, or an
+  integer too large for a float). An entry
   whose *name* is unusable (empty, too long, not a string, not encodable as
   UTF-8) is left out of `metrics` and listed as (clipped name, "bad_name").
 - Parsing is orjson (fast path). JSON that orjson refuses is retried with the
@@ -50,6 +54,7 @@ __all__ = [
     "Vector",
     "check_size",
     "decode_vector",
+    "encode_vector",
     "parse_timestamp",
     "vector_from_object",
 ]
@@ -148,6 +153,14 @@ def decode_vector(raw: bytes | bytearray | memoryview | str,
     except orjson.JSONDecodeError as exc:
         obj = _parse_lenient(raw, exc)
     return vector_from_object(obj, limits)
+
+
+def encode_vector(vector: Vector) -> bytes:
+    """The message for a Vector (e.g. for a dead letter); decode_vector gives it back with invalid=()."""
+    obj: dict[str, Any] = {"ts": vector.ts, "entity": vector.entity, "metrics": vector.metrics}
+    if vector.labels:
+        obj["labels"] = vector.labels
+    return orjson.dumps(obj)
 
 
 def _parse_lenient(raw: bytes | bytearray | memoryview | str, strict_error: json.JSONDecodeError) -> Any:
@@ -314,6 +327,9 @@ def _metrics_checked(value: Mapping, limits: DecodeLimits) -> tuple[dict[str, fl
             out[name] = x
         else:
             invalid.append((name, "out_of_range" if math.isfinite(x) else "non_finite"))
+    if not out:  # only bad names: as empty as "metrics": {}
+        raise DecodeError("no_metrics", f"'metrics' has no entry with a usable name "
+                                        f"({len(invalid)} bad, e.g. {invalid[0][0]!r})")
     return out, tuple(invalid)
 
 

@@ -31,9 +31,7 @@ and line (or the event index for events passed in directly).
 
 from __future__ import annotations
 
-import argparse
 import math
-import sys
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Sequence
@@ -312,28 +310,3 @@ def format_table(evaluation: Evaluation) -> str:
 
 def _top(p: PredictedIncident, k: int = 3) -> str:
     return ",".join(f"{name}({size:.1f})" for name, size in p.metrics[:k]) or "-"
-
-
-def main(argv: Sequence[str] | None = None) -> int:
-    """``python -m shiftsieve.stream.evaluate EVENTS LABELS``: print the report; exit 2 on bad input."""
-    parser = argparse.ArgumentParser(prog="python -m shiftsieve.stream.evaluate",
-                                     description="Score alert events against incident labels.")
-    parser.add_argument("events", help="alert events, one JSON object per line")
-    parser.add_argument("labels", help="labels file (NAME.labels.json)")
-    parser.add_argument("--vectors", type=int, default=None, help="vector count (default: from the labels)")
-    parser.add_argument("--tolerance", type=float, default=DEFAULT_TOLERANCE_SECONDS,
-                        help=f"seconds an onset may precede a label's start (default {DEFAULT_TOLERANCE_SECONDS:g})")
-    parser.add_argument("--json", action="store_true", help="print JSON instead of the table")
-    args = parser.parse_args(argv)
-    try:
-        result = evaluate(load_events(args.events), load_labels(args.labels),
-                          vectors=args.vectors, tolerance_seconds=args.tolerance)
-    except EvaluationError as exc:
-        print(f"shiftsieve evaluate: {exc}", file=sys.stderr)
-        return 2
-    print(orjson.dumps(result.to_dict(), option=orjson.OPT_INDENT_2).decode() if args.json else format_table(result))
-    return 0
-
-
-if __name__ == "__main__":
-    raise SystemExit(main())

@@ -34,7 +34,6 @@ import os
 import stat
 import zlib
 from dataclasses import dataclass
-from itertools import chain
 from types import TracebackType
 from collections.abc import Iterator
 from typing import IO, Any, BinaryIO
@@ -89,10 +88,12 @@ def input_size(path: str | os.PathLike[str]) -> int | None:
 
 
 class RecordStream(Iterator[Vector | Rejected]):
-    """Iterator of an input's records in file order, with progress (`bytes_read`) and `close()`."""
+    """Iterator of an input's records in file order, with progress (`bytes_read`), `line` and `close()`."""
 
-    def __init__(self, path: str, file: BinaryIO, stream: IO[bytes], records: Iterator[Vector | Rejected]) -> None:
+    def __init__(self, path: str, file: BinaryIO, stream: IO[bytes],
+                 records: Iterator[tuple[int, Vector | Rejected]]) -> None:
         self.path = path
+        self.line = 0              # line number of the record returned last
         self._file = file          # the file on disk: its position is the progress
         self._stream = stream      # same object, or the gzip reader on top of it
         self._records = records
@@ -102,7 +103,10 @@ class RecordStream(Iterator[Vector | Rejected]):
     def bytes_read(self) -> int:
         """Bytes of the file on disk consumed so far (compressed bytes for .gz; read-ahead included)."""
         if not self._file.closed:
-            self._bytes_read = self._file.tell()
+            try:
+                self._bytes_read = self._file.tell()
+            except OSError:  # a broken file keeps its last known position
+                pass
         return self._bytes_read
 
     def __iter__(self) -> RecordStream:
@@ -110,15 +114,15 @@ class RecordStream(Iterator[Vector | Rejected]):
 
     def __next__(self) -> Vector | Rejected:
         try:
-            return next(self._records)
+            self.line, record = next(self._records)
         except StopIteration:
             self.close()
             raise
+        return record
 
     def close(self) -> None:
         """Release the file; idempotent. Called automatically at the end of the input."""
-        if not self._file.closed:
-            self._bytes_read = self._file.tell()
+        self._bytes_read = self.bytes_read
         self._records.close()
         self._stream.close()
         self._file.close()
@@ -245,16 +249,16 @@ def _payload(number: int, line: bytes) -> bytes:
 
 
 def _jsonl_records(lines: Iterator[tuple[int, bytes] | Rejected], limits: DecodeLimits,
-                   raw_cap: int) -> Iterator[Vector | Rejected]:
+                   raw_cap: int) -> Iterator[tuple[int, Vector | Rejected]]:
     for item in lines:
         if isinstance(item, Rejected):
-            yield item
+            yield item.line, item
             continue
         number, line = item
         try:
-            yield decode_vector(_payload(number, line), limits)
+            yield number, decode_vector(_payload(number, line), limits)
         except DecodeError as exc:
-            yield _rejected(number, exc.reason, str(exc), line, raw_cap)
+            yield number, _rejected(number, exc.reason, str(exc), line, raw_cap)
 
 
 @dataclass(frozen=True, slots=True)
@@ -266,20 +270,20 @@ class _Header:
 
 
 def _csv_records(name: str, lines: Iterator[tuple[int, bytes] | Rejected], limits: DecodeLimits,
-                 raw_cap: int) -> Iterator[Vector | Rejected]:
+                 raw_cap: int) -> Iterator[tuple[int, Vector | Rejected]]:
     """Reads the header now (InputError if unusable) and returns the generator of the rows."""
     header = _csv_header(name, next(lines, None), limits)
 
-    def rows() -> Iterator[Vector | Rejected]:
+    def rows() -> Iterator[tuple[int, Vector | Rejected]]:
         for item in lines:
             if isinstance(item, Rejected):
-                yield item
+                yield item.line, item
                 continue
             number, line = item
             try:
-                yield vector_from_object(_csv_object(line, header), limits)
+                yield number, vector_from_object(_csv_object(line, header), limits)
             except DecodeError as exc:
-                yield _rejected(number, exc.reason, str(exc), line, raw_cap)
+                yield number, _rejected(number, exc.reason, str(exc), line, raw_cap)
 
     return rows()
 
@@ -349,22 +353,26 @@ class DeadLetterWriter:
     {"line": N, "reason": slug, "detail": sentence, "raw": text, "raw_encoding": "utf-8" | "base64",
      "truncated": bool, "source": input path}. `raw` is the original line as text when it is valid
     UTF-8, else base64 of its bytes (see raw_encoding); with truncated false it is the whole line.
+    `source` is given once here or per write (which wins); null if neither.
     The file is created (truncated) on open; OSError if it cannot be.
     """
 
-    def __init__(self, path: str | os.PathLike[str], source: str | os.PathLike[str]) -> None:
-        self.source = os.fspath(source)
+    def __init__(self, path: str | os.PathLike[str], source: str | os.PathLike[str] | None = None) -> None:
+        self.source = source
         self.count = 0
         self._file = open(path, "wb")
 
-    def write(self, rejected: Rejected) -> None:
+    def write(self, rejected: Rejected, source: str | os.PathLike[str] | None = None) -> None:
+        source = source if source is not None else self.source
         try:
             raw, encoding = rejected.raw.decode("utf-8"), "utf-8"
         except UnicodeDecodeError:
             raw, encoding = base64.b64encode(rejected.raw).decode("ascii"), "base64"
         self._file.write(orjson.dumps({
             "line": rejected.line, "reason": rejected.reason, "detail": rejected.detail, "raw": raw,
-            "raw_encoding": encoding, "truncated": rejected.truncated, "source": self.source,
+            "raw_encoding": encoding, "truncated": rejected.truncated,
+            # an undecodable file name (surrogate-escaped by the OS layer) must not break the JSON
+            "source": None if source is None else os.fsencode(source).decode("utf-8", "backslashreplace"),
         }, option=orjson.OPT_APPEND_NEWLINE))
         self.count += 1
 

@@ -31,11 +31,14 @@ def load(name: str) -> tuple[list[dict], dict]:
 
 
 def entity_matrix(rows: list[dict], entity: str) -> tuple[np.ndarray, list[str], np.ndarray]:
-    """(ts, metric names, values / catalog sigma) for the entity's metrics that are never missing."""
+    """(ts, names, noise-whitened values) of the entity's never-missing metrics: each metric on its
+    generation scale (log1p for the log metrics) divided by the catalog's noise sigma."""
     mine = [r for r in rows if r["entity"] == entity]
-    sigma = {m.name: m.sigma for m in CATALOG[mine[0]["labels"]["service"]]}
-    names = sorted(n for n in sigma if all(r["metrics"].get(n) is not None for r in mine))
-    x = np.array([[r["metrics"][n] / sigma[n] for n in names] for r in mine])
+    catalog = {m.name: m for m in CATALOG[mine[0]["labels"]["service"]]}
+    names = sorted(n for n in catalog if all(r["metrics"].get(n) is not None for r in mine))
+    x = np.array([[r["metrics"][n] for n in names] for r in mine])
+    for j, name in enumerate(names):
+        x[:, j] = (np.log1p(x[:, j]) if catalog[name].log else x[:, j]) / catalog[name].sigma
     return np.array([r["ts"] for r in mine]), names, x
 
 

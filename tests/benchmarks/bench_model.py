@@ -1,0 +1,68 @@
+"""Model-path benchmark: vectors/s through one entity's full detector.
+
+Run:  python tests/benchmarks/bench_model.py [--quick] [--batch B]
+
+For n in {50, 200, 1000} metrics (rank-8 shared movement plus noise, a few
+persistent shifts), it times ``EntityDetector.process`` over micro-batches
+after warm-up — normalise, projected LASSO, debias, decide, learn — and
+prints vectors/s and microseconds per vector, plus the share of vectors the
+solver finished without iterating.  Single process, single thread of numpy
+work dominates (set OPENBLAS_NUM_THREADS=1 to pin it to one core).  Figures
+only; nothing is asserted about speed.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+
+import numpy as np
+
+from shiftsieve.models.detector import DetectorConfig, EntityDetector
+
+
+def stream(rng: np.random.Generator, n: int, r: int, samples: int) -> np.ndarray:
+    loadings = rng.standard_normal((n, r)) * 3.0
+    X = 100.0 + rng.standard_normal((samples, r)) @ loadings.T + rng.standard_normal((samples, n))
+    for start in range(samples // 3, samples, samples // 4):   # a few persistent shifts
+        cols = rng.choice(n, 3, replace=False)
+        X[start:start + 200, cols] += 8.0
+    return X
+
+
+def measure(n: int, batch: int, batches: int, seed: int = 0) -> dict:
+    rng = np.random.default_rng(seed)
+    warmup = 300
+    X = stream(rng, n, 8, warmup + batch * batches)
+    det = EntityDetector(n, np.zeros(n, bool), DetectorConfig(warmup=warmup, rank=8))
+    det.process(X[:warmup], np.arange(warmup, dtype=float))
+    ts = np.arange(X.shape[0], dtype=float)
+    zero_iter = 0
+    started = time.perf_counter()
+    for start in range(warmup, X.shape[0], batch):
+        out = det.process(X[start:start + batch], ts[start:start + batch])
+        zero_iter += int(np.count_nonzero(out.n_iter == 0))
+    seconds = time.perf_counter() - started
+    vectors = X.shape[0] - warmup
+    return {"n": n, "batch": batch, "vectors": vectors, "seconds": seconds,
+            "rate": vectors / seconds, "us_per_vector": 1e6 * seconds / vectors,
+            "zero_iteration_share": zero_iter / vectors}
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="tiny run (smoke test)")
+    parser.add_argument("--batch", type=int, default=256, help="vectors per micro-batch")
+    args = parser.parse_args(argv)
+    batches = 2 if args.quick else 40
+    print(f"model path, rank 8, micro-batch {args.batch}, default detector settings")
+    print(f"{'n':>6s} {'vectors/s':>12s} {'us/vector':>10s} {'0-iteration':>12s}")
+    for n in (50, 200, 1000):
+        m = measure(n, args.batch, batches if n < 1000 else max(batches // 4, 1))
+        print(f"{m['n']:6d} {m['rate']:12,.0f} {m['us_per_vector']:10.1f} {m['zero_iteration_share']:11.0%}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
