@@ -54,9 +54,9 @@ def winsorised_second_moment(c: float) -> float:
 class DetectorConfig:
     """Model settings for one entity; every count is in samples."""
 
-    warmup: int = 200
+    warmup: int = 540
     rank: int | None = None
-    energy: float = 0.9
+    energy: float = 0.99
     max_rank: int = 8
     baseline_halflife: float = 1440.0
     normaliser_halflife: float = 1440.0
@@ -121,7 +121,8 @@ class EntityDetector:
         self.lam = config.threshold
         self._scale_decay = decay_for_halflife(config.scale_halflife)
         self._beta = winsorised_second_moment(self.lam)
-        self.normaliser = RobustNormaliser(np.asarray(log_mask, bool), halflife=config.normaliser_halflife)
+        self.normaliser = RobustNormaliser(np.asarray(log_mask, bool), halflife=config.normaliser_halflife,
+                                           settle=config.min_samples)
         self.baseline = SubspaceTracker(rank=config.rank, energy=config.energy, max_rank=config.max_rank,
                                         halflife=config.baseline_halflife)
         self.tracker = AlertTracker(n_metrics, config.decision)
@@ -154,7 +155,8 @@ class EntityDetector:
         k = log_mask.size
         if self.warming_up:
             self._warmup_rows = [np.concatenate([r, np.full(k, np.nan)]) for r in self._warmup_rows]
-        self.normaliser.extend(RobustNormaliser(log_mask, halflife=self.config.normaliser_halflife))
+        self.normaliser.extend(RobustNormaliser(log_mask, halflife=self.config.normaliser_halflife,
+                                                     settle=self.config.min_samples))
         self.baseline.extend(k)
         self.tracker.extend(k)
         self.residual_scale = np.concatenate([self.residual_scale, np.ones(k)])
@@ -196,18 +198,27 @@ class EntityDetector:
         return self._empty(X.shape[0])
 
     def _fit_warmup(self, W: np.ndarray) -> None:
+        """Fit normaliser, baseline and residual scales on the warm-up block."""
         norm = self.normaliser.fit(W)
-        Z = norm.transform(W)
-        Z = np.where(norm.count >= self.config.min_samples, np.clip(Z, -6.0, 6.0), np.nan)
+        usable = norm.count >= self.config.min_samples
+        Z = np.where(usable, norm.transform(W), np.nan).clip(-self.WARMUP_CLIP, self.WARMUP_CLIP)
         self.baseline.fit(Z)
-        # Residual scale from in-sample residuals, corrected for the r directions fitted to them.
-        filled = impute_low_rank(Z, self.baseline.rank)
-        R = filled - (filled @ self.baseline.U) @ self.baseline.U.T
-        R = np.where(np.isfinite(Z), R, np.nan)
-        rank = self.baseline.rank
+        self.residual_scale = self._warmup_residual_scale(Z, self.baseline)
+
+    #: Warm-up values beyond this many robust sigmas are clipped, so a wild outlier of the warm-up
+    #: cannot own a baseline direction; recurring patterns such as batch jobs stay below it and are
+    #: learned (clipping them harder would bend their direction).
+    WARMUP_CLIP = 50.0
+
+    @staticmethod
+    def _warmup_residual_scale(Z: np.ndarray, tracker: SubspaceTracker) -> np.ndarray:
+        """Robust per-metric scale of in-sample residuals, corrected for the r fitted directions."""
+        filled = impute_low_rank(Z, tracker.rank)
+        R = np.where(np.isfinite(Z), filled - (filled @ tracker.U) @ tracker.U.T, np.nan)
+        W = Z.shape[0]
         with np.errstate(all="ignore"):
-            mad = MAD_TO_SIGMA * np.nanmedian(np.abs(R), axis=0) * math.sqrt(W.shape[0] / max(W.shape[0] - rank, 1))
-        self.residual_scale = np.where(np.isfinite(mad) & (mad > 1e-6), mad, 1.0)
+            mad = MAD_TO_SIGMA * np.nanmedian(np.abs(R), axis=0) * math.sqrt(W / max(W - tracker.rank, 1))
+        return np.where(np.isfinite(mad) & (mad > 1e-9), mad, 1.0)
 
     def _empty(self, B: int) -> BatchResult:
         return BatchResult([], np.zeros((B, self.n_metrics)), np.zeros((B, self.baseline.rank)), np.zeros(B),

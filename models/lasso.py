@@ -520,10 +520,14 @@ def debias(
         return out
     # Supports differ per row: pad them to the largest size k and solve all the
     # k x k normal equations in one batched call (pads get an identity block).
-    support = S[rows] != 0
-    k = int(support.sum(axis=1).max())
-    slots = np.argsort(~support, axis=1, kind="stable")[:, :k]  # support columns first, in order
-    valid = np.take_along_axis(support, slots, axis=1)  # (B', k) False = padding
+    r_idx, c_idx = np.nonzero(S[rows])  # row-major: each row's support columns in order
+    sizes = np.bincount(r_idx, minlength=rows.size)
+    k = int(sizes.max())
+    slot = np.arange(r_idx.size) - np.repeat(np.cumsum(sizes) - sizes, sizes)
+    slots = np.zeros((rows.size, k), dtype=np.int64)
+    slots[r_idx, slot] = c_idx
+    valid = np.zeros((rows.size, k), dtype=bool)  # False = padding
+    valid[r_idx, slot] = True
     n = prob.Z.shape[1]
     if prob.phi is None:
         cols = np.zeros((rows.size, k, n))
@@ -540,9 +544,12 @@ def debias(
     pads = ~valid
     gram[pads[:, :, None] | pads[:, None, :]] = 0.0
     gram[pads[:, :, None] & np.eye(k, dtype=bool)] = 1.0
-    # Minimum-norm solution when P_b Phi_S is rank deficient (e.g. a group and all its members).
-    coef = np.einsum("bij,bj->bi", np.linalg.pinv(gram, rtol=_GRAM_RTOL, hermitian=True), rhs)
-    out[np.repeat(rows, k).reshape(-1, k)[valid], slots[valid]] = coef[valid]
+    if k == 1:   # the common case: one coefficient per row
+        g = gram[:, 0, 0]
+        coef = np.where(g > _GRAM_RTOL, rhs[:, 0] / np.where(g > 0, g, 1.0), 0.0)[:, None]
+    else:   # minimum-norm solution when P_b Phi_S is rank deficient (e.g. a group and all its members)
+        coef = np.einsum("bij,bj->bi", np.linalg.pinv(gram, rtol=_GRAM_RTOL, hermitian=True), rhs)
+    out[rows[r_idx], c_idx] = coef[r_idx, slot]
     return out
 
 

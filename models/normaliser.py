@@ -2,9 +2,11 @@
 
 Every metric is mapped to comparable units, ``z = (f(x) - loc) / scale``, where
 ``f`` is the identity or a symmetric log for heavy-tailed metrics.  Location and
-scale start from the warm-up median and MAD and then follow exponentially
-weighted updates fed with the *cleaned* signal (observation minus the detected
-shift), so a fault never drags the normal level towards itself.
+scale start from the warm-up median and MAD; the location then follows an
+exponentially weighted average fed with the *cleaned* signal (observation minus
+the detected shift), so a fault never drags the normal level towards itself.
+The scale is the unit of everything downstream and stays fixed once a metric
+has settled (the detector tracks drift in spread with its residual scales).
 """
 
 from __future__ import annotations
@@ -37,7 +39,7 @@ def decay_for_halflife(halflife: float) -> float:
 
 
 class RobustNormaliser:
-    """Per-metric location and scale with exponentially weighted, cleaned updates.
+    """Per-metric location (exponentially weighted, cleaned updates) and scale.
 
     Parameters
     ----------
@@ -48,8 +50,8 @@ class RobustNormaliser:
     min_scale:
         Absolute floor on the scale; a relative floor of 1e-6 * |loc| also applies,
         so constant metrics do not divide by zero.
-    clip_after:
-        Samples after which a metric's updates are clipped at 5 sigma.
+    settle:
+        Samples after which a metric's scale is fixed and its updates are clipped.
 
     Examples
     --------
@@ -65,14 +67,14 @@ class RobustNormaliser:
     """
 
     def __init__(self, log_mask: np.ndarray, *, halflife: float = 1440.0, min_scale: float = 1e-9,
-                 clip_after: int = 30) -> None:
+                 settle: int = 30) -> None:
         self.log_mask = np.asarray(log_mask, dtype=bool).copy()
         self.halflife = float(halflife)
         self.decay = decay_for_halflife(halflife)
         if not min_scale > 0:
             raise ValueError(f"min_scale must be > 0, got {min_scale!r}")
         self.min_scale = float(min_scale)
-        self.clip_after = int(clip_after)
+        self.settle = int(settle)
         n = self.log_mask.size
         self.loc = np.zeros(n)
         self.scale = np.ones(n)
@@ -124,42 +126,47 @@ class RobustNormaliser:
         return F
 
     def update(self, Z_clean: np.ndarray, observed: np.ndarray) -> None:
-        """Exponentially weighted update from cleaned, *normalised* values (B, n) in sample order.
+        """Update the locations from cleaned, *normalised* values (B, n) in sample order.
 
         Working in normalised units keeps the update cheap: a sample with normalised
         value ``z`` moves the location by its weight times ``z * scale``.  While a
         metric has fewer samples than the average's effective length it uses the
         plain running mean instead (the usual bias adjustment of an exponential
-        average), so metrics that appear late are learned at once.  Deviations of
-        established metrics are clipped at 5 sigma, so one unexplained outlier
-        cannot move the level much.
+        average), so metrics that appear late are learned at once.  The scale of a
+        metric is learned (running mean absolute deviation) only until it has
+        ``settle`` samples: after that it is the unit the baseline and the residual
+        scales are expressed in, and drift in spread is tracked by the detector's
+        residual scales instead.  Deviations of settled metrics are clipped at
+        5 units, so one unexplained outlier cannot move the level much.
         """
         observed = np.asarray(observed, dtype=bool)
         B = observed.shape[0]
         if B == 0:
             return
+        settled = self.count >= self.settle
         seen_now = observed.sum(axis=0)
         z = np.where(observed, Z_clean, 0.0)
-        np.clip(z, -5.0, 5.0, out=z, where=self.count >= self.clip_after)
+        np.clip(z, -5.0, 5.0, out=z, where=settled)
         # Exponential weights (1 - decay) decay^(B-1-j) for sample j (0 = oldest); products with
         # them are matrix-vector products, and the old estimate keeps decay^(samples seen).
         decay_w = (1.0 - self.decay) * self.decay ** np.arange(B - 1, -1, -1)
-        ew_total = decay_w @ observed
         ew_kept = self.decay ** seen_now
-        # While a metric has fewer samples than the average's effective length, plain running
-        # means instead (the usual bias adjustment of an exponential average).
         seen = self.count + seen_now
         filling = seen < 1.0 / (1.0 - self.decay)
-        total = np.where(filling, 1.0, ew_total + ew_kept)
-        kept = np.where(filling, self.count / np.maximum(seen, 1), ew_kept) / total
         w_fill = 1.0 / np.maximum(seen, 1)
-        shift = np.where(filling, z.sum(axis=0) * w_fill, (decay_w @ z) / total)
-        dev = np.abs(z - shift) * observed
-        abs_dev = np.where(filling, dev.sum(axis=0) * w_fill, (decay_w @ dev) / total)
-        # New scale: the old one (1 in normalised units) blended with the new mean absolute deviation.
+        shift = np.where(filling, z.sum(axis=0) * w_fill, (decay_w @ z) / (decay_w @ observed + ew_kept))
+        if not settled.all():
+            fresh = np.flatnonzero(~settled)
+            dev = (np.abs(z[:, fresh] - shift[fresh]) * observed[:, fresh]).sum(axis=0) * w_fill[fresh]
+            kept = self.count[fresh] * w_fill[fresh]
+            self.scale[fresh] = self.scale[fresh] * (kept + ABS_DEV_TO_SIGMA * dev)
         self.loc = self.loc + shift * self.scale
-        self.scale = self._floor(self.scale * (kept + ABS_DEV_TO_SIGMA * abs_dev), self.loc)
+        self.scale = self._floor(self.scale, self.loc)
         self.count = seen
+
+    def rescale(self, factor: np.ndarray) -> None:
+        """Multiply the scales by ``factor`` (the detector expresses metrics in residual sigmas)."""
+        self.scale = self._floor(self.scale * factor, self.loc)
 
     def accept_shift(self, metrics: np.ndarray, shift_z: np.ndarray) -> None:
         """Move the location of ``metrics`` by ``shift_z`` (normalised units): the new normal."""

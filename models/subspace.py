@@ -23,14 +23,33 @@ import numpy as np
 from .normaliser import decay_for_halflife
 
 
-def choose_rank(singular_values: np.ndarray, energy: float, max_rank: int) -> int:
-    """Smallest rank whose components explain ``energy`` of the total energy, capped at ``max_rank``."""
+def noise_rank(singular_values: np.ndarray, shape: tuple[int, int]) -> int:
+    """Number of singular values above the optimal hard threshold for unknown noise level.
+
+    Gavish & Donoho (2014), "The optimal hard threshold for singular values is 4/sqrt(3)":
+    ``tau = omega(beta) * median(singular values)`` with aspect ratio ``beta <= 1`` and their
+    polynomial approximation of ``omega``.  Components below it are indistinguishable from
+    noise; keeping them would let single noisy metrics own a baseline direction (leverage
+    near 1), which hides their shifts and inflates their alarms.
+    """
+    sv = np.asarray(singular_values, dtype=float)
+    beta = min(shape) / max(shape)
+    omega = 0.56 * beta ** 3 - 0.95 * beta ** 2 + 1.82 * beta + 1.43
+    return int(np.count_nonzero(sv > omega * np.median(sv)))
+
+
+def choose_rank(singular_values: np.ndarray, energy: float, max_rank: int,
+                shape: tuple[int, int] | None = None) -> int:
+    """Smallest rank whose components explain ``energy`` of the total energy, capped at
+    ``max_rank`` and, given the data ``shape``, at the components above the noise threshold."""
     power = np.asarray(singular_values, dtype=float) ** 2
     total = power.sum()
     if total <= 0:
         return 1
     explained = np.cumsum(power) / total
     rank = int(np.searchsorted(explained, energy) + 1)
+    if shape is not None:
+        rank = min(rank, noise_rank(singular_values, shape))
     return max(1, min(rank, max_rank, power.size))
 
 
@@ -53,7 +72,8 @@ class SubspaceTracker:
     Parameters
     ----------
     rank:
-        Fixed rank, or ``None`` to choose it at warm-up by explained ``energy``.
+        Fixed rank, or ``None`` to choose it at warm-up: by explained ``energy``, capped at
+        ``max_rank`` and at the components above the noise threshold (:func:`noise_rank`).
     energy:
         Fraction of the warm-up energy the chosen rank must explain.
     max_rank:
@@ -102,7 +122,7 @@ class SubspaceTracker:
         filled = impute_low_rank(Z, cap)
         _, sv, right = np.linalg.svd(filled, full_matrices=False)
         rank = min(self.fixed_rank, sv.size) if self.fixed_rank is not None else \
-            choose_rank(sv, self.energy, self.max_rank)
+            choose_rank(sv, self.energy, self.max_rank, Z.shape)
         # Rescale the spectrum to the forgetting-weighted moment of the same W vectors,
         # sum_k decay^k c c^T ~ E[cc^T] (1 - decay^W) / (1 - decay), so updates weigh it right.
         W = Z.shape[0]

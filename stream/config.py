@@ -57,11 +57,11 @@ def _groups(v: Any) -> bool:
 
 
 SCHEMA: tuple[Setting, ...] = (
-    Setting("model", "warmup", int, 200, "an integer in 10..100000", _range(10, 100_000),
+    Setting("model", "warmup", int, 540, "an integer in 10..100000", _range(10, 100_000),
             "vectors an entity collects before it is scored"),
     Setting("model", "rank", int, 0, "an integer in 0..64 (0 = choose by energy)", _range(0, 64),
             "rank of the baseline subspace; 0 chooses it at warm-up from `energy` capped at `max_rank`"),
-    Setting("model", "energy", float, 0.9, "a number in (0, 1]", _range(0, 1, lo_open=True),
+    Setting("model", "energy", float, 0.99, "a number in (0, 1]", _range(0, 1, lo_open=True),
             "share of warm-up energy the chosen rank explains"),
     Setting("model", "max_rank", int, 8, "an integer in 1..64", _range(1, 64), "cap on the chosen rank"),
     Setting("model", "baseline_halflife", float, 1440.0, "a number of samples in (0, 1e9]",
