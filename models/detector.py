@@ -267,7 +267,9 @@ class EntityDetector:
                 residual: np.ndarray, coords: np.ndarray) -> list[Transition]:
         """Feed the decision layer with just the metrics that are active or not quiet."""
         scored = self.normaliser.count >= self.config.warmup
-        active = effect_lasso != 0
+        # Active: selected by the LASSO and still clear of the hysteresis bar after the refit (a
+        # refit can shrink one of several correlated selections to almost nothing).
+        active = (effect_lasso != 0) & (np.abs(shift_sigma) >= self.config.decision.clear_sigma)
         cols = np.flatnonzero((active.any(axis=0) & scored) | (self.tracker.state != QUIET))
         d = self.residual_scale[cols]
         stat = (effect_lasso[:, cols] + residual[:, cols]) / d

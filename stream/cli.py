@@ -83,6 +83,9 @@ def main(argv: list[str] | None = None) -> int:
     except (ConfigError, InputError, EvaluationError) as exc:
         print(f"shiftsieve: error: {exc}", file=sys.stderr)
         return EXIT_USAGE
+    except BrokenPipeError:   # output piped into `head` and closed: not an error
+        sys.stderr.close()
+        return 0
     except OSError as exc:   # e.g. the events file cannot be created
         print(f"shiftsieve: error: {exc.strerror or exc}: {exc.filename or ''}".rstrip(": "), file=sys.stderr)
         return EXIT_USAGE

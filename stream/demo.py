@@ -14,6 +14,7 @@ from .readers import InputError
 from .replay import replay
 
 LABELS_SUFFIX = ".labels.json"
+MAX_ROWS = 8   # metrics shown per event; the events file has them all
 
 
 def _bundle() -> Path:
@@ -63,15 +64,19 @@ def format_event(event: dict) -> str:
         head += f"  after {_duration(event['duration_seconds'])}; peak shifts:"
     else:
         head += f"  after {_duration(event['duration_seconds'])}: accepted as the new normal"
-    rows = [f"    {'metric':28s} {'shift':>9s} {'observed':>12s} {'expected':>12s}"]
-    for m in event["metrics"]:
-        rows.append(f"    {m['name']:28s} {m['shift_sigma']:+8.1f}\u03c3 {_number(m['value']):>12s} "
+    width = max(28, *(len(m["name"]) for m in event["metrics"][:MAX_ROWS]))
+    rows = [f"    {'metric':{width}s} {'shift':>9s} {'observed':>12s} {'expected':>12s}"]
+    for m in event["metrics"][:MAX_ROWS]:
+        rows.append(f"    {m['name']:{width}s} {m['shift_sigma']:+8.1f}\u03c3 {_number(m['value']):>12s} "
                     f"{_number(m['expected']):>12s}")
+    if len(event["metrics"]) > MAX_ROWS:
+        rows.append(f"    ... and {len(event['metrics']) - MAX_ROWS} more")
     return "\n".join([head, *rows])
 
 
-def run_demo(name: str, config: Config, *, events_path: str | None = None, out: TextIO = sys.stdout) -> int:
+def run_demo(name: str, config: Config, *, events_path: str | None = None, out: TextIO | None = None) -> int:
     """Replay the bundled incident ``name``, print every alert, then the score against its labels."""
+    out = sys.stdout if out is None else out
     available = scenarios()
     if name not in available:
         raise InputError(f"no bundled incident named {name!r}; available: {', '.join(available)}")
@@ -83,7 +88,7 @@ def run_demo(name: str, config: Config, *, events_path: str | None = None, out: 
     print(f"replayed {summary.format()}\n", file=out)
     if not events:
         print("no alerts.\n", file=out)
-    for event in events:
+    for event in sorted(events, key=lambda e: e["ts"]):   # entities are processed batch by batch
         print(format_event(event) + "\n", file=out)
     print("Against the labelled truth:", file=out)
     print(format_table(evaluate(events, labels, vectors=summary.vectors)), file=out)

@@ -65,6 +65,7 @@ class Labels:
     scenario: str
     vectors: int
     incidents: tuple[LabelledIncident, ...]
+    description: str = ""
 
 
 @dataclass(frozen=True)
@@ -212,7 +213,8 @@ def load_labels(path: str | Path) -> Labels:
             raise EvaluationError(f"{where}: 'shift_sigma' must map names to numbers")
         incidents.append(LabelledIncident(inc["entity"], float(inc["start"]), float(inc["end"]),
                                           tuple(metrics), dict(shift), str(inc.get("kind", "step"))))
-    return Labels(str(data.get("scenario", Path(path).name)), vectors, tuple(incidents))
+    return Labels(str(data.get("scenario", Path(path).name)), vectors, tuple(incidents),
+                  str(data.get("description", "")))
 
 
 def predicted_incidents(events: Sequence[dict]) -> list[PredictedIncident]:
