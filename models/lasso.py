@@ -528,19 +528,21 @@ def debias(
     slots[r_idx, slot] = c_idx
     valid = np.zeros((rows.size, k), dtype=bool)  # False = padding
     valid[r_idx, slot] = True
-    n = prob.Z.shape[1]
+    m, ginv = prob.rows(rows)
+    Y, _ = _project(prob.Z[rows], prob.U, m, ginv)
     if prob.phi is None:
-        cols = np.zeros((rows.size, k, n))
-        np.put_along_axis(cols, slots[:, :, None], valid[:, :, None].astype(float), axis=2)
+        # Phi_S are unit vectors: Phi_S^T P_b Phi_S = I - U_S G_b^+ U_S^T (support rows of U,
+        # all observed) and Phi_S^T P_b z = (P_b z)_S, so nothing of size n is formed per slot.
+        US = prob.U[slots] * valid[:, :, None]  # (B', k, r)
+        inner = US if ginv is None else np.einsum("bkr,brs->bks", US, ginv)
+        gram = np.eye(k) - inner @ US.transpose(0, 2, 1)
+        rhs = np.take_along_axis(Y, slots, axis=1) * valid
     else:
         cols = prob.phi.T[slots] * valid[:, :, None]  # (B', k, n): phi_j per support slot
-    m, ginv = prob.rows(rows)
-    if m is not None:
-        m, ginv = m[:, None, :], ginv[:, None, :, :]
-    A, _ = _project(cols, prob.U, m, ginv)  # rows: P_b phi_j
-    Y, _ = _project(prob.Z[rows], prob.U, *prob.rows(rows))
-    gram = A @ A.transpose(0, 2, 1)
-    rhs = np.einsum("bkn,bn->bk", A, Y)
+        A, _ = _project(cols, prob.U, None if m is None else m[:, None, :],
+                        None if ginv is None else ginv[:, None, :, :])  # rows: P_b phi_j
+        gram = A @ A.transpose(0, 2, 1)
+        rhs = np.einsum("bkn,bn->bk", A, Y)
     pads = ~valid
     gram[pads[:, :, None] | pads[:, None, :]] = 0.0
     gram[pads[:, :, None] & np.eye(k, dtype=bool)] = 1.0
