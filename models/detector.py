@@ -20,6 +20,7 @@ Until ``warmup`` vectors have arrived it only collects them.
 from __future__ import annotations
 
 import math
+import warnings
 from dataclasses import dataclass, field, replace
 
 import numpy as np
@@ -39,15 +40,15 @@ def threshold_for(false_alarm: float) -> float:
     return float(-ndtri(false_alarm / 2.0))
 
 
-def winsorised_second_moment(c: float) -> float:
-    """``E[min(X^2, c^2)]`` for standard normal X (Huber's proposal-2 consistency factor).
+def truncated_second_moment(c: float) -> float:
+    """``E[X^2 | |X| < c]`` for standard normal X: ``1 - 2 c phi(c) / (2 Phi(c) - 1)``.
 
-    The LASSO residual of a metric is clipped at ``lambda d`` by the optimality
-    conditions, so its mean square underestimates ``d^2`` by this factor.
+    Residual scales are estimated from the samples the LASSO did not select, i.e. with
+    ``|residual| < lambda d``; their mean square underestimates ``d^2`` by this factor.
     """
-    tail = math.erfc(c / math.sqrt(2.0))  # P(|X| > c)
+    inside = math.erf(c / math.sqrt(2.0))  # P(|X| < c)
     density = math.exp(-0.5 * c * c) / math.sqrt(2.0 * math.pi)
-    return (1.0 - tail) - 2.0 * c * density + c * c * tail
+    return 1.0 - 2.0 * c * density / inside
 
 
 @dataclass(frozen=True)
@@ -120,7 +121,7 @@ class EntityDetector:
         self.config = config
         self.lam = config.threshold
         self._scale_decay = decay_for_halflife(config.scale_halflife)
-        self._beta = winsorised_second_moment(self.lam)
+        self._truncated_moment = truncated_second_moment(self.lam)
         self.normaliser = RobustNormaliser(np.asarray(log_mask, bool), halflife=config.normaliser_halflife,
                                            settle=config.min_samples)
         self.baseline = SubspaceTracker(rank=config.rank, energy=config.energy, max_rank=config.max_rank,
@@ -130,6 +131,10 @@ class EntityDetector:
         self.warm_start = np.zeros(n_metrics)
         self.set_groups(list(groups or []))
         self._warmup_rows: list[np.ndarray] = []
+        # Metrics on probation (seen after warm-up, not yet modelled): per metric the sums
+        # sum w w^T, sum w z, sum z^2 over their samples, w = baseline coordinates.
+        self._probation: dict[int, list] = {}
+        self.admitted = np.zeros(n_metrics, dtype=bool)
         self.samples = 0
         self.last_shift_sigma = np.zeros(n_metrics)
 
@@ -160,6 +165,7 @@ class EntityDetector:
         self.baseline.extend(k)
         self.tracker.extend(k)
         self.residual_scale = np.concatenate([self.residual_scale, np.ones(k)])
+        self.admitted = np.concatenate([self.admitted, np.zeros(k, dtype=bool)])
         self.last_shift_sigma = np.concatenate([self.last_shift_sigma, np.zeros(k)])
         self.warm_start = np.concatenate([self.warm_start[: self.n_metrics - k], np.zeros(k)])
         self.set_groups(self.groups)   # same members; the dictionary grows by k identity columns
@@ -171,8 +177,11 @@ class EntityDetector:
         self.baseline.keep(index)
         self.tracker.keep(index)
         self.residual_scale = self.residual_scale[index]
+        self.admitted = self.admitted[index]
         self.last_shift_sigma = self.last_shift_sigma[index]
         self.warm_start = self.warm_start[index]
+        renumber = {int(old): new for new, old in enumerate(index)}
+        self._probation = {renumber[j]: v for j, v in self._probation.items() if j in renumber}
         self.set_groups([])
 
     # -- the batch path ------------------------------------------------------------------------
@@ -201,6 +210,7 @@ class EntityDetector:
         """Fit normaliser, baseline and residual scales on the warm-up block."""
         norm = self.normaliser.fit(W)
         usable = norm.count >= self.config.min_samples
+        self.admitted = usable.copy()
         Z = np.where(usable, norm.transform(W), np.nan).clip(-self.WARMUP_CLIP, self.WARMUP_CLIP)
         self.baseline.fit(Z)
         self.residual_scale = self._warmup_residual_scale(Z, self.baseline)
@@ -216,7 +226,8 @@ class EntityDetector:
         filled = impute_low_rank(Z, tracker.rank)
         R = np.where(np.isfinite(Z), filled - (filled @ tracker.U) @ tracker.U.T, np.nan)
         W = Z.shape[0]
-        with np.errstate(all="ignore"):
+        with warnings.catch_warnings():   # metrics absent from the warm-up: all-NaN columns
+            warnings.simplefilter("ignore", RuntimeWarning)
             mad = MAD_TO_SIGMA * np.nanmedian(np.abs(R), axis=0) * math.sqrt(W / max(W - tracker.rank, 1))
         return np.where(np.isfinite(mad) & (mad > 1e-9), mad, 1.0)
 
@@ -230,7 +241,8 @@ class EntityDetector:
         B, n = X.shape
         Z = norm.transform(X)
         present = np.isfinite(Z)
-        modelled = norm.count >= cfg.min_samples      # metrics the model knows well enough
+        modelled = self.admitted                       # metrics the baseline knows
+        settled = norm.count >= cfg.min_samples        # their units are fixed (see _fold_in)
         # mask None = every entry observed: the common case, which skips all masking passes.
         mask = None if modelled.all() and present.all() else present & modelled
         penalty = self.lam * column_scales(self.residual_scale, phi)
@@ -253,7 +265,10 @@ class EntityDetector:
         effect_lasso = metric_effect(fit.coef, phi) if support.size else effect
         shift_sigma = effect / self.residual_scale   # zero wherever the metric is unobserved
         transitions = self._decide(X, ts, effect_lasso, shift_sigma, fit.residual, coords)
-        self._learn(Z, present, mask, effect if support.size else None, coords, fit.residual, transitions)
+        quiet = (effect_lasso == 0) if mask is None else (effect_lasso == 0) & mask
+        self._learn(Z, present, mask, effect if support.size else None, coords, fit.residual, quiet, transitions)
+        if not modelled.all():
+            self._fold_in(Z, present & settled & ~modelled, coords)
         if leading:   # rows refer to the caller's batch, which began with warm-up vectors
             transitions = [replace(t, row=t.row + leading) for t in transitions]
         self.warm_start = fit.coef[-1].copy()
@@ -282,7 +297,8 @@ class EntityDetector:
         return self.normaliser.inverse(coords @ self.baseline.U.T)
 
     def _learn(self, Z: np.ndarray, present: np.ndarray, mask: np.ndarray | None, effect: np.ndarray | None,
-               coords: np.ndarray, residual: np.ndarray, transitions: list[Transition]) -> None:
+               coords: np.ndarray, residual: np.ndarray, quiet: np.ndarray,
+               transitions: list[Transition]) -> None:
         cleaned = Z if effect is None else Z - effect
         if mask is None:
             self.baseline.update(cleaned)
@@ -291,26 +307,66 @@ class EntityDetector:
             # skipped (they would only pull the basis towards its own guess).
             complete = np.where(mask, cleaned, coords @ self.baseline.U.T)
             self.baseline.update(complete[mask.mean(axis=1) >= 0.5])
-        self._update_residual_scale(residual, mask)
+        self._update_residual_scale(residual, quiet)
         self.normaliser.update(cleaned, present)
         for t in transitions:
             if t.kind == "adapted":   # the shift becomes the new normal
                 self.normaliser.accept_shift(t.metrics, effect[t.row, t.metrics])
                 self.warm_start[t.metrics] = 0.0
 
-    def _update_residual_scale(self, residual: np.ndarray, mask: np.ndarray | None) -> None:
-        """Exponentially weighted mean square of the residual, divided by the Huber factor
-        (the LASSO residual is winsorised at lambda * d by its optimality conditions)."""
+    def _fold_in(self, Z: np.ndarray, learning: np.ndarray, coords: np.ndarray) -> None:
+        """Learn a late metric's baseline loadings by regression on the baseline coordinates while
+        it is on probation, then fold them into the basis when it enters the model.
+
+        Probation starts once the metric's normaliser has settled (fixed units) and lasts
+        ``min_samples`` samples.  Entering with zero loadings would make its whole shared
+        movement look like a shift, and the basis would swing to absorb it, disturbing every
+        other metric's prediction.
+        """
+        cfg = self.config
+        for j in np.flatnonzero(learning.any(axis=0)):
+            rows = learning[:, j]
+            w, z = coords[rows], Z[rows, j]
+            stats = self._probation.setdefault(int(j), [0.0, 0.0, 0.0, 0])
+            stats[0] = stats[0] + w.T @ w
+            stats[1] = stats[1] + w.T @ z
+            stats[2] += float(z @ z)
+            stats[3] += int(rows.sum())
+        ready = [j for j, stats in self._probation.items() if stats[3] >= cfg.min_samples]
+        if not ready:
+            return
+        loadings, scales = [], []
+        for j in ready:
+            ww, wz, zz, k = self._probation.pop(j)
+            u = np.linalg.lstsq(ww + 1e-9 * np.eye(len(wz)), wz, rcond=None)[0]
+            rss = max(zz - 2.0 * u @ wz + u @ ww @ u, 0.0)
+            loadings.append(u)
+            scales.append(math.sqrt(rss / max(k - len(u), 1)) or 1.0)
+        ready = np.array(ready)
+        # Express the newcomer in units where its residual scale is the entity's typical one, so
+        # its own noise has no more energy than another metric's and cannot claim a direction.
+        typical = float(np.median(np.delete(self.residual_scale, ready))) if ready.size < self.n_metrics else 1.0
+        factor = np.array(scales) / typical
+        units = np.ones(self.n_metrics)
+        units[ready] = factor
+        self.normaliser.rescale(units)
+        self.baseline.set_rows(ready, np.array(loadings) / factor[:, None])
+        self.residual_scale[ready] = typical
+        self.admitted[ready] = True
+
+    def _update_residual_scale(self, residual: np.ndarray, quiet: np.ndarray) -> None:
+        """Exponentially weighted mean square of the residual over the entries the LASSO left
+        at zero (``quiet``: observed and not selected), divided by the second moment of a
+        standard normal truncated at ``lambda``.  Selected entries carry no information on the
+        noise (their residual is pinned at ``lambda d`` by the optimality conditions) and would
+        inflate ``d`` during a long shift, desensitising the metric just when it matters.
+        """
         B = residual.shape[0]
         decay = self._scale_decay
         weights = (1.0 - decay) * decay ** np.arange(B - 1, -1, -1)
-        squares = residual * residual     # zero at unobserved entries
-        moment = (weights @ squares) / self._beta
-        if mask is None:
-            kept, total = decay ** B, weights.sum() + decay ** B
-        else:
-            kept = decay ** mask.sum(axis=0)
-            total = weights @ mask + kept
+        kept = decay ** quiet.sum(axis=0)
+        moment = (weights @ np.where(quiet, residual * residual, 0.0)) / self._truncated_moment
+        total = weights @ quiet + kept
         self.residual_scale = np.sqrt(np.maximum((kept * self.residual_scale ** 2 + moment) / total, 1e-12))
 
     def _pad(self, leading: int, result: BatchResult) -> BatchResult:

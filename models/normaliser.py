@@ -155,13 +155,14 @@ class RobustNormaliser:
         filling = seen < 1.0 / (1.0 - self.decay)
         w_fill = 1.0 / np.maximum(seen, 1)
         shift = np.where(filling, z.sum(axis=0) * w_fill, (decay_w @ z) / (decay_w @ observed + ew_kept))
+        scale = self.scale.copy()
         if not settled.all():
             fresh = np.flatnonzero(~settled)
             dev = (np.abs(z[:, fresh] - shift[fresh]) * observed[:, fresh]).sum(axis=0) * w_fill[fresh]
             kept = self.count[fresh] * w_fill[fresh]
-            self.scale[fresh] = self.scale[fresh] * (kept + ABS_DEV_TO_SIGMA * dev)
-        self.loc = self.loc + shift * self.scale
-        self.scale = self._floor(self.scale, self.loc)
+            scale[fresh] *= np.where(seen_now[fresh] > 0, kept + ABS_DEV_TO_SIGMA * dev, 1.0)
+        self.loc = self.loc + shift * self.scale   # z is in units of the scale before this update
+        self.scale = self._floor(scale, self.loc)
         self.count = seen
 
     def rescale(self, factor: np.ndarray) -> None:

@@ -155,7 +155,16 @@ class SubspaceTracker:
 
     def keep(self, index: np.ndarray) -> None:
         """Drop metrics not in ``index`` and re-orthonormalise, keeping the spectrum's rotation."""
-        reduced = self.U[index] * self.singular_values
-        left, sv, _ = np.linalg.svd(reduced, full_matrices=False)
+        self._refactor(self.U[index])
+
+    def set_rows(self, metrics: np.ndarray, loadings: np.ndarray) -> None:
+        """Give ``metrics`` the rows ``loadings`` (k, r) in the current coordinates, then
+        re-orthonormalise ("folding in" rows of a thin SVD)."""
+        U = self.U.copy()
+        U[metrics] = loadings
+        self._refactor(U)
+
+    def _refactor(self, U: np.ndarray) -> None:
+        left, sv, _ = np.linalg.svd(U * self.singular_values, full_matrices=False)
         self.U = left
         self.singular_values = sv

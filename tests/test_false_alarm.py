@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy.stats import binom
 
-from shiftsieve.models.detector import DetectorConfig, EntityDetector, threshold_for, winsorised_second_moment
+from shiftsieve.models.detector import DetectorConfig, EntityDetector, threshold_for, truncated_second_moment
 
 
 def null_stream(seed, n=50, r=3, samples=6000):
@@ -44,10 +44,10 @@ def test_threshold_is_the_two_sided_gaussian_quantile():
     assert threshold_for(1e-3) == pytest.approx(3.2905, abs=1e-4)   # standard normal table
 
 
-def test_winsorised_moment_matches_numerical_integral():
+def test_truncated_moment_matches_numerical_integral():
     from scipy.integrate import quad
     from scipy.stats import norm
-    # Huber's proposal-2 factor E[min(X^2, c^2)], by scipy.integrate.quad against scipy.stats.norm.
+    # E[X^2 | |X| < c], by scipy.integrate.quad against scipy.stats.norm.
     for c in (1.0, 2.576, 3.29):
-        ref = quad(lambda x: min(x * x, c * c) * norm.pdf(x), -np.inf, np.inf, limit=200)[0]
-        assert winsorised_second_moment(c) == pytest.approx(ref, rel=1e-7)
+        ref = quad(lambda x: x * x * norm.pdf(x), -c, c)[0] / (norm.cdf(c) - norm.cdf(-c))
+        assert truncated_second_moment(c) == pytest.approx(ref, rel=1e-9)
