@@ -36,7 +36,7 @@ import zlib
 from dataclasses import dataclass
 from types import TracebackType
 from collections.abc import Iterator
-from typing import IO, Any, BinaryIO
+from typing import IO, Any, BinaryIO, Callable
 
 import orjson
 
@@ -248,17 +248,23 @@ def _payload(number: int, line: bytes) -> bytes:
     return line[len(_BOM):] if number == 1 and line.startswith(_BOM) else line
 
 
-def _jsonl_records(lines: Iterator[tuple[int, bytes] | Rejected], limits: DecodeLimits,
-                   raw_cap: int) -> Iterator[tuple[int, Vector | Rejected]]:
+def _decoded(lines: Iterator[tuple[int, bytes] | Rejected], parse: Callable[[int, bytes], Vector],
+             raw_cap: int) -> Iterator[tuple[int, Vector | Rejected]]:
+    """Parse every line; a DecodeError becomes a Rejected record, reader rejections pass through."""
     for item in lines:
         if isinstance(item, Rejected):
             yield item.line, item
             continue
         number, line = item
         try:
-            yield number, decode_vector(_payload(number, line), limits)
+            yield number, parse(number, line)
         except DecodeError as exc:
             yield number, _rejected(number, exc.reason, str(exc), line, raw_cap)
+
+
+def _jsonl_records(lines: Iterator[tuple[int, bytes] | Rejected], limits: DecodeLimits,
+                   raw_cap: int) -> Iterator[tuple[int, Vector | Rejected]]:
+    return _decoded(lines, lambda number, line: decode_vector(_payload(number, line), limits), raw_cap)
 
 
 @dataclass(frozen=True, slots=True)
@@ -273,19 +279,7 @@ def _csv_records(name: str, lines: Iterator[tuple[int, bytes] | Rejected], limit
                  raw_cap: int) -> Iterator[tuple[int, Vector | Rejected]]:
     """Reads the header now (InputError if unusable) and returns the generator of the rows."""
     header = _csv_header(name, next(lines, None), limits)
-
-    def rows() -> Iterator[tuple[int, Vector | Rejected]]:
-        for item in lines:
-            if isinstance(item, Rejected):
-                yield item.line, item
-                continue
-            number, line = item
-            try:
-                yield number, vector_from_object(_csv_object(line, header), limits)
-            except DecodeError as exc:
-                yield number, _rejected(number, exc.reason, str(exc), line, raw_cap)
-
-    return rows()
+    return _decoded(lines, lambda number, line: vector_from_object(_csv_object(line, header), limits), raw_cap)
 
 
 def _csv_header(name: str, item: tuple[int, bytes] | Rejected | None, limits: DecodeLimits) -> _Header:

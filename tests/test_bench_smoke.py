@@ -28,3 +28,13 @@ def test_bench_solver_runs(capsys):
     # The benchmark's own agreement figure: same problem, same tolerance rule.
     m = re.search(r"objective \(ours - sklearn\)/sklearn on the sklearn subset: max ([-+0-9.e]+)", out)
     assert m and abs(float(m.group(1))) < 1e-4, out
+
+
+def test_bench_model_runs(capsys):
+    spec = importlib.util.spec_from_file_location("bench_model", BENCH.with_name("bench_model.py"))
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    assert mod.main(["--quick", "--batch", "64"]) == 0
+    out = capsys.readouterr().out
+    for n in (50, 200, 1000):
+        assert re.search(rf"^\s+{n}\s+[0-9,]+\s+[0-9.]+\s+[0-9]+%$", out, re.M), (n, out)
