@@ -29,7 +29,7 @@ from scipy.special import ndtri
 from .decision import QUIET, AlertTracker, DecisionConfig, Transition
 from .dictionary import build_dictionary, column_scales, metric_effect
 from .lasso import debias, projected_residual, solve_projected_lasso
-from .normaliser import MAD_TO_SIGMA, RobustNormaliser, decay_for_halflife
+from .normaliser import MAD_TO_SIGMA, RobustNormaliser, decay_for_halflife, to_metric_units
 from .subspace import SubspaceTracker, impute_low_rank
 
 
@@ -91,10 +91,22 @@ class BatchResult:
 
     transitions: list[Transition]
     shift_sigma: np.ndarray      # debiased per-metric shift in residual sigmas (0 off the support)
-    coords: np.ndarray           # (B, r) baseline coordinates; see EntityDetector.expected_values
+    coords: np.ndarray           # (B, r) baseline coordinates, in the basis used for this batch
     residual_norm: np.ndarray    # (B,) norm of the projected residual, in residual sigmas
     n_iter: np.ndarray           # (B,) solver iterations
     converged: np.ndarray        # (B,) solver reached its tolerance
+    units: tuple = ()            # (basis, loc, scale, log_mask) the batch was scored with
+
+    def expected(self) -> np.ndarray:
+        """The baseline's expected value (B, n) in the metrics' own units (NaN while warming up).
+
+        Computed on demand: the hot path needs it only for the few busy metrics.  The basis
+        rotates as it learns, so coordinates only mean something with the basis of their batch.
+        """
+        if not self.units:
+            return np.full(self.shift_sigma.shape, np.nan)
+        basis, loc, scale, log_mask = self.units
+        return to_metric_units(self.coords @ basis.T, loc, scale, log_mask)
 
 
 class EntityDetector:
@@ -136,7 +148,6 @@ class EntityDetector:
         self._probation: dict[int, list] = {}
         self.admitted = np.zeros(n_metrics, dtype=bool)
         self.samples = 0
-        self.last_shift_sigma = np.zeros(n_metrics)
 
     # -- shape bookkeeping ---------------------------------------------------------------------
     @property
@@ -166,7 +177,6 @@ class EntityDetector:
         self.tracker.extend(k)
         self.residual_scale = np.concatenate([self.residual_scale, np.ones(k)])
         self.admitted = np.concatenate([self.admitted, np.zeros(k, dtype=bool)])
-        self.last_shift_sigma = np.concatenate([self.last_shift_sigma, np.zeros(k)])
         self.warm_start = np.concatenate([self.warm_start[: self.n_metrics - k], np.zeros(k)])
         self.set_groups(self.groups)   # same members; the dictionary grows by k identity columns
 
@@ -178,7 +188,6 @@ class EntityDetector:
         self.tracker.keep(index)
         self.residual_scale = self.residual_scale[index]
         self.admitted = self.admitted[index]
-        self.last_shift_sigma = self.last_shift_sigma[index]
         self.warm_start = self.warm_start[index]
         renumber = {int(old): new for new, old in enumerate(index)}
         self._probation = {renumber[j]: v for j, v in self._probation.items() if j in renumber}
@@ -274,9 +283,9 @@ class EntityDetector:
         self.warm_start = fit.coef[-1].copy()
         self.samples += B
         residual_norm = np.sqrt(np.einsum("ij,ij->i", fit.residual, fit.residual / self.residual_scale ** 2))
-        self.last_shift_sigma = shift_sigma[-1]
+        units = (U, norm.loc, norm.scale, norm.log_mask)   # arrays are replaced, never mutated, by learning
         return self._pad(leading, BatchResult(transitions, shift_sigma, coords, residual_norm,
-                                              fit.n_iter, fit.converged))
+                                              fit.n_iter, fit.converged, units))
 
     def _decide(self, X: np.ndarray, ts: np.ndarray, effect_lasso: np.ndarray, shift_sigma: np.ndarray,
                 residual: np.ndarray, coords: np.ndarray) -> list[Transition]:
@@ -291,10 +300,6 @@ class EntityDetector:
         expected = self.normaliser.inverse_columns(coords @ self.baseline.U[cols].T, cols)
         return self.tracker.step(active[:, cols] & scored[cols], shift_sigma[:, cols], stat, X[:, cols],
                                  expected, ts, columns=cols)
-
-    def expected_values(self, coords: np.ndarray) -> np.ndarray:
-        """The baseline's expected value (B, n), in the metrics' own units, for coordinates ``coords``."""
-        return self.normaliser.inverse(coords @ self.baseline.U.T)
 
     def _learn(self, Z: np.ndarray, present: np.ndarray, mask: np.ndarray | None, effect: np.ndarray | None,
                coords: np.ndarray, residual: np.ndarray, quiet: np.ndarray,
@@ -375,4 +380,5 @@ class EntityDetector:
         empty = self._empty(leading)
         return BatchResult(result.transitions,
                            *(np.concatenate([getattr(empty, f), getattr(result, f)])
-                             for f in ("shift_sigma", "coords", "residual_norm", "n_iter", "converged")))
+                             for f in ("shift_sigma", "coords", "residual_norm", "n_iter", "converged")),
+                           units=result.units)

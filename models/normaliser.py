@@ -31,6 +31,14 @@ def symexp(y: np.ndarray) -> np.ndarray:
     return np.sign(y) * np.expm1(np.abs(y))
 
 
+def to_metric_units(Z: np.ndarray, loc: np.ndarray, scale: np.ndarray, log_mask: np.ndarray) -> np.ndarray:
+    """Normalised values back to the metrics' own units for a given location/scale/log mask."""
+    F = loc + np.asarray(Z, dtype=float) * scale
+    if log_mask.any():
+        F[..., log_mask] = symexp(F[..., log_mask])
+    return F
+
+
 def decay_for_halflife(halflife: float) -> float:
     """Per-sample weight kept by an exponential average whose weight halves after ``halflife`` samples."""
     if not halflife > 0:
@@ -119,11 +127,7 @@ class RobustNormaliser:
 
     def inverse_columns(self, Z: np.ndarray, columns: np.ndarray | slice) -> np.ndarray:
         """:meth:`inverse` for the metrics ``columns`` only (Z is (B, k))."""
-        F = self.loc[columns] + np.asarray(Z, dtype=float) * self.scale[columns]
-        logs = self.log_mask[columns]
-        if logs.any():
-            F[..., logs] = symexp(F[..., logs])
-        return F
+        return to_metric_units(Z, self.loc[columns], self.scale[columns], self.log_mask[columns])
 
     def update(self, Z_clean: np.ndarray, observed: np.ndarray) -> None:
         """Update the locations from cleaned, *normalised* values (B, n) in sample order.
@@ -171,7 +175,9 @@ class RobustNormaliser:
 
     def accept_shift(self, metrics: np.ndarray, shift_z: np.ndarray) -> None:
         """Move the location of ``metrics`` by ``shift_z`` (normalised units): the new normal."""
-        self.loc[metrics] = self.loc[metrics] + shift_z * self.scale[metrics]
+        loc = self.loc.copy()   # replaced, not mutated: scored batches keep the units they used
+        loc[metrics] = loc[metrics] + shift_z * self.scale[metrics]
+        self.loc = loc
 
     def extend(self, other: "RobustNormaliser") -> None:
         """Append the metrics of ``other`` (fitted on their own warm-up) after this one's."""

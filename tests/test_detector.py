@@ -46,6 +46,18 @@ def test_step_shift_is_found_sized_and_resolved():
     assert in_units.mean() == pytest.approx(8.0, rel=0.05)
 
 
+def test_expected_values_track_the_observations_when_quiet():
+    X, _ = shared_stream(6)
+    det = EntityDetector(X.shape[1], np.zeros(X.shape[1], bool), CFG)
+    run(det, X[:1000])
+    out = det.process(X[1000:1064], np.arange(1000.0, 1064.0))
+    expected = out.expected()
+    # Quiet stream: observed - expected is the unit-variance noise (plus the baseline's own
+    # estimation error), while the shared movement itself spans tens of units.
+    assert np.std(X[1000:1064] - expected) < 1.3
+    assert np.std(X[1000:1064] - X[1000:1064].mean(axis=0)) > 5.0
+
+
 def test_shared_surge_is_not_a_shift():
     X, loadings = shared_stream(2)
     X[2000:2200] += 4.0 * loadings[:, 0]     # every metric moves along the first shared factor
