@@ -30,8 +30,8 @@ def _parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     demo = sub.add_parser("demo", help="replay a bundled incident and print its alerts (no broker needed)")
-    demo.add_argument("--scenario", default="multi_shift",
-                      help="bundled incident to replay (default: multi_shift; see --list)")
+    demo.add_argument("--scenario", default="single_shift",
+                      help="bundled incident to replay (default: single_shift; see --list)")
     demo.add_argument("--list", action="store_true", help="list the bundled incidents and exit")
     demo.add_argument("--events", metavar="FILE", help="also write the alert events as JSON lines")
     demo.add_argument("--config", metavar="FILE", help="TOML configuration")
