@@ -28,7 +28,7 @@ from scipy.special import ndtri
 
 from .decision import QUIET, AlertTracker, DecisionConfig, Transition
 from .dictionary import build_dictionary, column_scales, metric_effect
-from .lasso import debias, projected_residual, solve_projected_lasso
+from .lasso import refit_solution, solve_projected_lasso
 from .normaliser import MAD_TO_SIGMA, RobustNormaliser, decay_for_halflife, to_metric_units
 from .subspace import SubspaceTracker, impute_low_rank
 
@@ -260,22 +260,20 @@ class EntityDetector:
         Zo = Z if mask is None else np.where(mask, Z, 0.0)   # the solver fixes unobserved columns at 0
         fit = solve_projected_lasso(Zo, U, penalty, phi=phi, mask=mask, init=self.warm_start,
                                     tol=cfg.tol, max_iter=cfg.max_iter, lipschitz=self._lipschitz)
-        coords = fit.coords
         support = np.flatnonzero((fit.coef != 0).any(axis=1))
-        coef_unbiased = fit.coef
-        if support.size:   # refit the few rows with a shift; the rest keep the LASSO's coordinates
-            coef_unbiased = fit.coef.copy()
-            sub_mask = None if mask is None else mask[support]
-            coef_unbiased[support] = debias(Zo[support], U, fit.coef[support], phi=phi, mask=sub_mask)
-            coords = coords.copy()
-            _, coords[support] = projected_residual(Zo[support], U, coef_unbiased[support], phi=phi,
-                                                    mask=sub_mask)
+        coef_unbiased, coords = fit.coef, fit.coords
+        if support.size:   # least-squares refit of the selected shifts: unbiased magnitudes
+            coef_unbiased, coords = refit_solution(Zo, U, fit, phi=phi, mask=mask, check_input=False)
+        # Shifts live in the few rows with a support: compute them there only.
         effect = metric_effect(coef_unbiased, phi)
         effect_lasso = metric_effect(fit.coef, phi) if support.size else effect
-        shift_sigma = effect / self.residual_scale   # zero wherever the metric is unobserved
-        transitions = self._decide(X, ts, effect_lasso, shift_sigma, fit.residual, coords)
-        quiet = (effect_lasso == 0) if mask is None else (effect_lasso == 0) & mask
-        self._learn(Z, present, mask, effect if support.size else None, coords, fit.residual, quiet, transitions)
+        shift_sigma = np.zeros((B, n))
+        shift_sigma[support] = effect[support] / self.residual_scale   # zero wherever unobserved
+        selected = np.zeros((B, n), dtype=bool)
+        selected[support] = effect_lasso[support] != 0
+        transitions = self._decide(X, ts, support, selected, effect_lasso, shift_sigma, fit.residual, coords)
+        self._learn(Z, present, mask, effect if support.size else None, coords, fit.residual, support, selected,
+                    transitions)
         if not modelled.all():
             self._fold_in(Z, present & settled & ~modelled, coords)
         if leading:   # rows refer to the caller's batch, which began with warm-up vectors
@@ -287,14 +285,16 @@ class EntityDetector:
         return self._pad(leading, BatchResult(transitions, shift_sigma, coords, residual_norm,
                                               fit.n_iter, fit.converged, units))
 
-    def _decide(self, X: np.ndarray, ts: np.ndarray, effect_lasso: np.ndarray, shift_sigma: np.ndarray,
-                residual: np.ndarray, coords: np.ndarray) -> list[Transition]:
+    def _decide(self, X: np.ndarray, ts: np.ndarray, support: np.ndarray, selected: np.ndarray,
+                effect_lasso: np.ndarray, shift_sigma: np.ndarray, residual: np.ndarray,
+                coords: np.ndarray) -> list[Transition]:
         """Feed the decision layer with just the metrics that are active or not quiet."""
         scored = self.normaliser.count >= self.config.warmup
         # Active: selected by the LASSO and still clear of the hysteresis bar after the refit (a
         # refit can shrink one of several correlated selections to almost nothing).
-        active = (effect_lasso != 0) & (np.abs(shift_sigma) >= self.config.decision.clear_sigma)
-        cols = np.flatnonzero((active.any(axis=0) & scored) | (self.tracker.state != QUIET))
+        active = np.zeros_like(selected)
+        active[support] = selected[support] & (np.abs(shift_sigma[support]) >= self.config.decision.clear_sigma)
+        cols = np.flatnonzero((active[support].any(axis=0) & scored) | (self.tracker.state != QUIET))
         d = self.residual_scale[cols]
         stat = (effect_lasso[:, cols] + residual[:, cols]) / d
         expected = self.normaliser.inverse_columns(coords @ self.baseline.U[cols].T, cols)
@@ -302,7 +302,7 @@ class EntityDetector:
                                  expected, ts, columns=cols)
 
     def _learn(self, Z: np.ndarray, present: np.ndarray, mask: np.ndarray | None, effect: np.ndarray | None,
-               coords: np.ndarray, residual: np.ndarray, quiet: np.ndarray,
+               coords: np.ndarray, residual: np.ndarray, support: np.ndarray, selected: np.ndarray,
                transitions: list[Transition]) -> None:
         cleaned = Z if effect is None else Z - effect
         if mask is None:
@@ -312,7 +312,7 @@ class EntityDetector:
             # skipped (they would only pull the basis towards its own guess).
             complete = np.where(mask, cleaned, coords @ self.baseline.U.T)
             self.baseline.update(complete[mask.mean(axis=1) >= 0.5])
-        self._update_residual_scale(residual, quiet)
+        self._update_residual_scale(residual, mask, support, selected)
         self.normaliser.update(cleaned, present)
         for t in transitions:
             if t.kind == "adapted":   # the shift becomes the new normal
@@ -359,20 +359,32 @@ class EntityDetector:
         self.residual_scale[ready] = typical
         self.admitted[ready] = True
 
-    def _update_residual_scale(self, residual: np.ndarray, quiet: np.ndarray) -> None:
-        """Exponentially weighted mean square of the residual over the entries the LASSO left
-        at zero (``quiet``: observed and not selected), divided by the second moment of a
-        standard normal truncated at ``lambda``.  Selected entries carry no information on the
-        noise (their residual is pinned at ``lambda d`` by the optimality conditions) and would
-        inflate ``d`` during a long shift, desensitising the metric just when it matters.
+    def _update_residual_scale(self, residual: np.ndarray, mask: np.ndarray | None, support: np.ndarray,
+                               selected: np.ndarray) -> None:
+        """Exponentially weighted mean square of the residual over the observed entries the LASSO
+        did not select, divided by the second moment of a standard normal truncated at ``lambda``.
+
+        Selected entries carry no information on the noise (their residual is pinned at
+        ``lambda d`` by the optimality conditions) and would inflate ``d`` during a long shift,
+        desensitising the metric just when it matters.  They sit in the few ``support`` rows,
+        so they are subtracted from the full sums rather than masked out of them.
         """
         B = residual.shape[0]
         decay = self._scale_decay
         weights = (1.0 - decay) * decay ** np.arange(B - 1, -1, -1)
-        kept = decay ** quiet.sum(axis=0)
-        moment = (weights @ np.where(quiet, residual * residual, 0.0)) / self._truncated_moment
-        total = weights @ quiet + kept
-        self.residual_scale = np.sqrt(np.maximum((kept * self.residual_scale ** 2 + moment) / total, 1e-12))
+        squares = residual * residual           # zero at unobserved entries
+        moment = weights @ squares
+        used_weight = np.full(residual.shape[1], weights.sum()) if mask is None else weights @ mask
+        used = np.full(residual.shape[1], B) if mask is None else mask.sum(axis=0)
+        if support.size:
+            sel = selected[support]
+            moment -= weights[support] @ np.where(sel, squares[support], 0.0)
+            used_weight = used_weight - weights[support] @ sel
+            used = used - sel.sum(axis=0)
+        kept = decay ** used
+        total = used_weight + kept
+        variance = (kept * self.residual_scale ** 2 + moment / self._truncated_moment) / total
+        self.residual_scale = np.sqrt(np.maximum(variance, 1e-12))
 
     def _pad(self, leading: int, result: BatchResult) -> BatchResult:
         if not leading:

@@ -50,6 +50,7 @@ __all__ = [
     "solve_projected_lasso",
     "projected_residual",
     "debias",
+    "refit_solution",
     "lasso_objective",
 ]
 
@@ -161,8 +162,12 @@ def _as_float_array(x, name: str, ndim: tuple[int, ...]) -> np.ndarray:
     return a
 
 
-def _prepare(Z, U, phi, mask) -> _Problem:
-    """Validate (Z, U, phi, mask) like scikit-learn does and precompute P_b."""
+def _prepare(Z, U, phi, mask, check: bool = True) -> _Problem:
+    """Validate (Z, U, phi, mask) like scikit-learn does and precompute P_b.
+
+    ``check=False`` keeps the shape checks but skips the value checks (finite
+    entries, orthonormal U), for callers that validated the same inputs already.
+    """
     Z = _as_float_array(Z, "Z", (2,))
     B, n = Z.shape
     if n == 0:
@@ -174,16 +179,16 @@ def _prepare(Z, U, phi, mask) -> _Problem:
     r = U.shape[1]
     if r > n:
         raise ValueError(f"U has more columns ({r}) than rows ({n}); columns cannot be orthonormal")
-    if not np.all(np.isfinite(U)):
+    if check and not np.all(np.isfinite(U)):
         raise ValueError("U contains NaN or infinite values")
-    if r and np.max(np.abs(U.T @ U - np.eye(r))) > _ORTHO_ATOL:
+    if check and r and np.max(np.abs(U.T @ U - np.eye(r))) > _ORTHO_ATOL:
         raise ValueError("U must have orthonormal columns (U^T U = I)")
 
     if phi is not None:
         phi = _as_float_array(phi, "phi", (2,))
         if phi.shape[0] != n or phi.shape[1] == 0:
             raise ValueError(f"phi must have shape (n, p) with n = Z.shape[1] = {n} and p >= 1, got {phi.shape}")
-        if not np.all(np.isfinite(phi)):
+        if check and not np.all(np.isfinite(phi)):
             raise ValueError("phi contains NaN or infinite values")
 
     m = ginv = col_ok = None
@@ -193,7 +198,7 @@ def _prepare(Z, U, phi, mask) -> _Problem:
             raise ValueError(f"mask must be a boolean array, got dtype {mask.dtype}")
         if mask.shape != Z.shape:
             raise ValueError(f"mask must have the shape of Z {Z.shape}, got {mask.shape}")
-        if not np.all(np.isfinite(Z[mask])):
+        if check and not np.all(np.isfinite(Z[mask])):
             raise ValueError("Z contains NaN or infinite values at observed entries (mask True)")
         if not mask.all():
             Z = np.where(mask, Z, 0.0)
@@ -205,7 +210,7 @@ def _prepare(Z, U, phi, mask) -> _Problem:
                 col_ok = mask.copy()
             else:
                 col_ok = (m @ (phi != 0)) > 0
-    elif not np.all(np.isfinite(Z)):
+    elif check and not np.all(np.isfinite(Z)):
         raise ValueError("Z contains NaN or infinite values (pass mask= to mark unobserved entries)")
     return _Problem(Z=Z, U=U, phi=phi, m=m, ginv=ginv, col_ok=col_ok)
 
@@ -514,10 +519,40 @@ def debias(
     """
     prob = _prepare(Z, U, phi, mask)
     S = _check_coef(S, prob)
-    out = np.zeros_like(S)
+    R, W = _project(prob.Z - prob.phi_mul(S), prob.U, prob.m, prob.ginv)
+    return _refit(prob, S, R, W)[0]
+
+
+def refit_solution(
+    Z: np.ndarray,
+    U: np.ndarray,
+    result: LassoResult,
+    *,
+    phi: np.ndarray | None = None,
+    mask: np.ndarray | None = None,
+    check_input: bool = True,
+) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`debias` for a solver result, reusing its residual and coordinates.
+
+    Returns ``(coef, coords)``: the refitted coefficients and the baseline
+    coordinates at them. Pass the same ``Z``/``U``/``phi``/``mask`` as to the
+    solver; ``check_input=False`` skips re-validating them (as scikit-learn's
+    ``check_input``), for callers that just did.
+    """
+    prob = _prepare(Z, U, phi, mask, check=check_input)
+    return _refit(prob, result.coef, result.residual, result.coords)
+
+
+def _refit(prob: _Problem, S: np.ndarray, R: np.ndarray, W: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Refit rows of S on their supports given ``R = P(z - Phi s)`` and coordinates ``W`` at S.
+
+    The normal equations read ``(Phi_S^T P Phi_S) s~ = Phi_S^T P z = (Phi_S^T P Phi_S) s_S
+    + Phi_S^T R``, so neither ``P z`` nor anything else of size n per sample is recomputed.
+    """
+    out, coords = S.copy(), W.copy()
     rows = np.flatnonzero(np.any(S != 0, axis=1))
     if rows.size == 0:
-        return out
+        return out, coords
     # Supports differ per row: pad them to the largest size k and solve all the
     # k x k normal equations in one batched call (pads get an identity block).
     r_idx, c_idx = np.nonzero(S[rows])  # row-major: each row's support columns in order
@@ -529,20 +564,21 @@ def debias(
     valid = np.zeros((rows.size, k), dtype=bool)  # False = padding
     valid[r_idx, slot] = True
     m, ginv = prob.rows(rows)
-    Y, _ = _project(prob.Z[rows], prob.U, m, ginv)
+    current = np.take_along_axis(S[rows], slots, axis=1) * valid
     if prob.phi is None:
         # Phi_S are unit vectors: Phi_S^T P_b Phi_S = I - U_S G_b^+ U_S^T (support rows of U,
-        # all observed) and Phi_S^T P_b z = (P_b z)_S, so nothing of size n is formed per slot.
+        # all observed) and Phi_S^T R = R_S.
         US = prob.U[slots] * valid[:, :, None]  # (B', k, r)
         inner = US if ginv is None else np.einsum("bkr,brs->bks", US, ginv)
         gram = np.eye(k) - inner @ US.transpose(0, 2, 1)
-        rhs = np.take_along_axis(Y, slots, axis=1) * valid
+        corr = np.take_along_axis(R[rows], slots, axis=1) * valid
     else:
         cols = prob.phi.T[slots] * valid[:, :, None]  # (B', k, n): phi_j per support slot
         A, _ = _project(cols, prob.U, None if m is None else m[:, None, :],
                         None if ginv is None else ginv[:, None, :, :])  # rows: P_b phi_j
         gram = A @ A.transpose(0, 2, 1)
-        rhs = np.einsum("bkn,bn->bk", A, Y)
+        corr = np.einsum("bkn,bn->bk", cols, R[rows])
+    rhs = np.einsum("bij,bj->bi", gram, current) + corr
     pads = ~valid
     gram[pads[:, :, None] | pads[:, None, :]] = 0.0
     gram[pads[:, :, None] & np.eye(k, dtype=bool)] = 1.0
@@ -551,8 +587,20 @@ def debias(
         coef = np.where(g > _GRAM_RTOL, rhs[:, 0] / np.where(g > 0, g, 1.0), 0.0)[:, None]
     else:   # minimum-norm solution when P_b Phi_S is rank deficient (e.g. a group and all its members)
         coef = np.einsum("bij,bj->bi", np.linalg.pinv(gram, rtol=_GRAM_RTOL, hermitian=True), rhs)
+    coef = coef * valid
     out[rows[r_idx], c_idx] = coef[r_idx, slot]
-    return out
+    # Coordinates move with the refit: w~ = w - G^+ U^T M Phi (s~ - s).
+    delta = coef - current
+    if prob.U.shape[1]:
+        if prob.phi is None:
+            shift = np.einsum("bk,bkr->br", delta, prob.U[slots])
+        else:
+            moved = np.einsum("bk,bkn->bn", delta, cols)
+            shift = (moved if m is None else moved * m) @ prob.U
+        if ginv is not None:
+            shift = np.einsum("brs,bs->br", ginv, shift)
+        coords[rows] -= shift
+    return out, coords
 
 
 def lasso_objective(

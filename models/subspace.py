@@ -137,17 +137,18 @@ class SubspaceTracker:
         B = C.shape[0]
         if B == 0 or self.rank == 0:
             return
-        weights = np.sqrt(self.decay ** np.arange(B - 1, -1, -1))[:, None]
-        Cw = C * weights
+        weights = self.decay ** np.arange(B - 1, -1, -1)[:, None]   # squared column weights
         old = self.U * (self.singular_values * np.sqrt(self.decay ** B))  # (n, r) factor of the old moment
-        # Apply the moment Y Y^T, Y = [old, Cw^T], to U once, then orthonormalise.
-        applied = old @ (old.T @ self.U) + Cw.T @ (Cw @ self.U)
+        # Apply the moment Y Y^T, Y = [old, diag(sqrt(weights)) C]^T, to U once, then orthonormalise.
+        applied = old @ (old.T @ self.U) + C.T @ (weights * (C @ self.U))
         Q, _ = np.linalg.qr(applied)
-        # Rayleigh-Ritz: principal directions of Y inside span(Q).
-        projected = np.vstack([old.T @ Q, Cw @ Q])  # Y^T Q, (r + B, r)
-        _, sv, right = np.linalg.svd(projected, full_matrices=False)
-        self.U = Q @ right.T
-        self.singular_values = sv
+        # Rayleigh-Ritz: principal directions of Y inside span(Q), from the r x r matrix Q^T Y Y^T Q.
+        OQ, CQ = old.T @ Q, C @ Q
+        small = OQ.T @ OQ + CQ.T @ (weights * CQ)
+        values, vectors = np.linalg.eigh(small)
+        order = np.argsort(values)[::-1]
+        self.U = Q @ vectors[:, order]
+        self.singular_values = np.sqrt(np.maximum(values[order], 0.0))
 
     def extend(self, k: int) -> None:
         """Add ``k`` metrics with zero loadings (the basis stays orthonormal); updates then learn them."""

@@ -490,3 +490,27 @@ def test_docstring_examples_run():
     # Reference: the examples in the module's docstrings (doctest).
     out = doctest.testmod(lasso_mod, optionflags=doctest.NORMALIZE_WHITESPACE)
     assert out.attempted > 0 and out.failed == 0
+
+
+def test_refit_solution_equals_debias_and_projected_residual():
+    """The detector's fast refit (reusing the solver's residual and coordinates) against the
+    plain path: debias() (itself checked against numpy.linalg.lstsq above) and the
+    coordinates that projected_residual() gives at the refitted coefficients."""
+    from shiftsieve.models.lasso import refit_solution
+    rng = np.random.default_rng(17)
+    n, r, B = 40, 3, 12
+    U = np.linalg.qr(rng.standard_normal((n, r)))[0]
+    G = np.zeros((n, 2))
+    G[:5, 0] = 1 / np.sqrt(5)
+    G[20:26, 1] = 1 / np.sqrt(6)
+    for phi in (None, np.hstack([np.eye(n), G])):
+        for mask in (None, rng.random((B, n)) > 0.1):
+            Z = rng.standard_normal((B, n)) @ (np.eye(n) - U @ U.T) + rng.standard_normal((B, r)) @ U.T * 5
+            Z[:, 7] += 6.0
+            Z[:, 20:26] += 3.0
+            p = n if phi is None else n + 2
+            fit = solve_projected_lasso(Z, U, np.full(p, 2.0), phi=phi, mask=mask, tol=1e-10, max_iter=5000)
+            coef, coords = refit_solution(Z, U, fit, phi=phi, mask=mask)
+            assert np.allclose(coef, debias(Z, U, fit.coef, phi=phi, mask=mask), atol=1e-8)
+            _, ref_coords = projected_residual(Z, U, coef, phi=phi, mask=mask)
+            assert np.allclose(coords, ref_coords, atol=1e-8)
