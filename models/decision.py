@@ -129,8 +129,13 @@ class AlertTracker:
         # Window counts ignore resets inside the batch, so they bound the true counts from above:
         # a metric that never reaches confirm_k and is not firing cannot change anything but its
         # history and its quiet/pending flag, which are computed for all such metrics at once.
-        can_fire = self._window_counts(active, columns) >= cfg.confirm_k
-        hot_local = np.flatnonzero((self.state[columns] == FIRING) | can_fire.any(axis=0))
+        # Cheapest bound first: fewer than confirm_k active samples in the batch and history.
+        firing = self.state[columns] == FIRING
+        enough = active.sum(axis=0) + np.bitwise_count(self.history[columns]) >= cfg.confirm_k
+        maybe = np.flatnonzero(firing | enough)
+        can_fire = self._window_counts(active[:, maybe], columns[maybe]) >= cfg.confirm_k
+        hot_local = maybe[firing[maybe] | can_fire.any(axis=0)]
+        can_fire = can_fire[:, np.isin(maybe, hot_local)]
         cold = np.ones(columns.size, dtype=bool)
         cold[hot_local] = False
         self._advance_quietly(active[:, cold], columns[cold])
@@ -139,7 +144,6 @@ class AlertTracker:
         hot = columns[hot_local]   # metric ids; data columns are hot_local
         active, shift, stat = active[:, hot_local], shift[:, hot_local], stat[:, hot_local]
         value, expected = value[:, hot_local], expected[:, hot_local]
-        can_fire = can_fire[:, hot_local]
         muted = np.zeros(hot.size, dtype=bool)  # adapted this batch: later rows still show the old shift
         out: list[Transition] = []
         row = 0
@@ -229,8 +233,9 @@ class AlertTracker:
         B = active.shape[0]
         cum = np.zeros((B + 1, active.shape[1]), dtype=np.int64)
         np.cumsum(active, axis=0, out=cum[1:])
-        rows = np.arange(B)
-        counts = cum[rows + 1] - cum[np.maximum(rows + 1 - m, 0)]
+        counts = cum[1:].copy()          # row t: cum[t + 1] - cum[max(t + 1 - m, 0)]
+        if B >= m:
+            counts[m - 1:] -= cum[:B - m + 1]
         # Row t also counts the newest m - 1 - t samples of the history (bit 0 = the previous sample).
         head = min(m - 1, B)
         if head:

@@ -260,20 +260,23 @@ class EntityDetector:
         Zo = Z if mask is None else np.where(mask, Z, 0.0)   # the solver fixes unobserved columns at 0
         fit = solve_projected_lasso(Zo, U, penalty, phi=phi, mask=mask, init=self.warm_start,
                                     tol=cfg.tol, max_iter=cfg.max_iter, lipschitz=self._lipschitz)
-        support = np.flatnonzero((fit.coef != 0).any(axis=1))
-        coef_unbiased, coords = fit.coef, fit.coords
-        if support.size:   # least-squares refit of the selected shifts: unbiased magnitudes
-            coef_unbiased, coords = refit_solution(Zo, U, fit, phi=phi, mask=mask, check_input=False)
-        # Shifts live in the few rows with a support: compute them there only.
-        effect = metric_effect(coef_unbiased, phi)
-        effect_lasso = metric_effect(fit.coef, phi) if support.size else effect
+        # Least-squares refit of the selected shifts (unbiased magnitudes). Shifts live in the
+        # few rows with a support, so everything about them is computed on those rows only.
+        support, coef_rows, coords_rows = refit_solution(Zo, U, fit, phi=phi, mask=mask, check_input=False)
+        coords = fit.coords
+        effect = np.zeros((B, n))         # refitted per-metric shift Phi s~ (normalised units)
         shift_sigma = np.zeros((B, n))
-        shift_sigma[support] = effect[support] / self.residual_scale   # zero wherever unobserved
         selected = np.zeros((B, n), dtype=bool)
-        selected[support] = effect_lasso[support] != 0
+        if support.size:
+            coords = coords.copy()
+            coords[support] = coords_rows
+            effect[support] = metric_effect(coef_rows, phi)
+            shift_sigma[support] = effect[support] / self.residual_scale   # zero wherever unobserved
+            selected[support] = metric_effect(fit.coef[support], phi) != 0
+            Z[support] -= effect[support]   # Z is ours: from here on it is the cleaned signal
+        effect_lasso = fit.coef if phi is None else metric_effect(fit.coef, phi)
         transitions = self._decide(X, ts, support, selected, effect_lasso, shift_sigma, fit.residual, coords)
-        self._learn(Z, present, mask, effect if support.size else None, coords, fit.residual, support, selected,
-                    transitions)
+        self._learn(Z, present, mask, effect, coords, fit.residual, support, selected, transitions)
         if not modelled.all():
             self._fold_in(Z, present & settled & ~modelled, coords)
         if leading:   # rows refer to the caller's batch, which began with warm-up vectors
@@ -301,10 +304,9 @@ class EntityDetector:
         return self.tracker.step(active[:, cols] & scored[cols], shift_sigma[:, cols], stat, X[:, cols],
                                  expected, ts, columns=cols)
 
-    def _learn(self, Z: np.ndarray, present: np.ndarray, mask: np.ndarray | None, effect: np.ndarray | None,
+    def _learn(self, cleaned: np.ndarray, present: np.ndarray, mask: np.ndarray | None, effect: np.ndarray,
                coords: np.ndarray, residual: np.ndarray, support: np.ndarray, selected: np.ndarray,
                transitions: list[Transition]) -> None:
-        cleaned = Z if effect is None else Z - effect
         if mask is None:
             self.baseline.update(cleaned)
         else:

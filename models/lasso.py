@@ -110,8 +110,8 @@ def _project(
     """
     if m is not None:
         X = X * m
-    if U.shape[1] == 0:
-        return X, np.zeros(X.shape[:-1] + (0,))
+    if U.shape[1] == 0:   # nothing to remove; still a new array, callers may write into it
+        return (X if m is not None else X.copy()), np.zeros(X.shape[:-1] + (0,))
     W = X @ U
     if ginv is not None:
         W = np.einsum("...ij,...j->...i", ginv, W)
@@ -356,7 +356,9 @@ def solve_projected_lasso(
     if zero_pen is not None:
         inv_pen[zero_pen] = 0.0
 
-    if init is None:
+    if init is None or (np.ndim(init) == 1 and not np.any(init)):   # cold, or an all-zero warm start
+        if init is not None:
+            _batch_rows(init, "init", 1, p)   # still validated
         X = np.zeros((B, p))
     else:
         X = _batch_rows(init, "init", B, p)
@@ -372,14 +374,17 @@ def solve_projected_lasso(
     yy = np.einsum("ij,ij->i", Y, Y)
     dnorm0 = _dual_norm(C0, inv_pen, zero_pen)
     p_best = 0.5 * yy
-    d_best = np.maximum(_dual_value(Y, Y, yy, dnorm0), 0.0)  # theta = 0 is always dual feasible
+    with np.errstate(divide="ignore"):
+        a0 = np.minimum(1.0, 1.0 / dnorm0)
+    d_best = np.maximum(a0 * yy - 0.5 * a0 * a0 * yy, 0.0)  # dual at a0 * P z; theta = 0 is always feasible
     # Zero is accepted only when it is exactly optimal (|Phi^T P z| <= penalty everywhere):
     # a small relative gap would otherwise hide a coordinate just over its threshold, and the
     # support is the detector's decision.
     zero_exact = dnorm0 <= 1.0
     thresh = tol * yy
     R, C = Y, C0
-    warm = np.flatnonzero(np.any(X != 0, axis=1))
+    warm = np.flatnonzero(np.any(X != 0, axis=1)) if init is not None else np.zeros(0, dtype=np.int64)
+    started = np.zeros(B, dtype=bool)   # rows that iterate from their warm start rather than zero
     if warm.size:
         m, ginv = prob.rows(warm)
         Rw, _ = _project(prob.Z[warm] - prob.phi_mul(X[warm]), prob.U, m, ginv)
@@ -395,10 +400,11 @@ def solve_projected_lasso(
         R, C = Y.copy(), C0.copy()
         R[warm[better]] = Rw[better]
         C[warm[better]] = Cw[better]
+        started[warm[better]] = True
 
     coef = X  # rows still to iterate are copied out below; results are written back here
     gap = p_best - d_best
-    converged = (gap <= thresh) & (zero_exact | np.any(X != 0, axis=1))
+    converged = (gap <= thresh) & (zero_exact | started)
     n_iter = np.zeros(B, dtype=np.int64)
 
     act = np.flatnonzero(~converged)
@@ -406,13 +412,14 @@ def solve_projected_lasso(
         _fista(prob, act, X[act], R[act], C[act], Y[act], _rows(pen, act), _rows(pen_fin, act),
                _rows(inv_pen, act), _rows(zero_pen, act), thresh[act], p_best[act], d_best[act],
                L, max_iter, coef, gap, converged, n_iter)
-    residual, coords = Y, W0   # the residual at zero; rows with a support are recomputed
-    moved = np.flatnonzero(np.any(coef != 0, axis=1))
+    # Residual and coordinates: those at zero (Y, W0, no longer needed as such) except in the
+    # rows that ended with a support, which only rows that iterated or started warm can have.
+    touched = np.union1d(act, np.flatnonzero(started))
+    moved = touched[np.any(coef[touched] != 0, axis=1)]
     if moved.size:
-        residual, coords = Y.copy(), W0.copy()
         m, ginv = prob.rows(moved)
-        residual[moved], coords[moved] = _project(prob.Z[moved] - prob.phi_mul(coef[moved]), prob.U, m, ginv)
-    return LassoResult(coef=coef, n_iter=n_iter, gap=gap, converged=converged, residual=residual, coords=coords)
+        Y[moved], W0[moved] = _project(prob.Z[moved] - prob.phi_mul(coef[moved]), prob.U, m, ginv)
+    return LassoResult(coef=coef, n_iter=n_iter, gap=gap, converged=converged, residual=Y, coords=W0)
 
 
 def _fista(prob, act, X, R, C, Y, pen, pen_fin, inv_pen, zero_pen, thresh, p_best, d_best,
@@ -520,7 +527,10 @@ def debias(
     prob = _prepare(Z, U, phi, mask)
     S = _check_coef(S, prob)
     R, W = _project(prob.Z - prob.phi_mul(S), prob.U, prob.m, prob.ginv)
-    return _refit(prob, S, R, W)[0]
+    rows, coef, _ = _refit(prob, S, R, W)
+    out = S.copy()
+    out[rows] = coef
+    return out
 
 
 def refit_solution(
@@ -531,28 +541,47 @@ def refit_solution(
     phi: np.ndarray | None = None,
     mask: np.ndarray | None = None,
     check_input: bool = True,
-) -> tuple[np.ndarray, np.ndarray]:
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """:func:`debias` for a solver result, reusing its residual and coordinates.
 
-    Returns ``(coef, coords)``: the refitted coefficients and the baseline
-    coordinates at them. Pass the same ``Z``/``U``/``phi``/``mask`` as to the
-    solver; ``check_input=False`` skips re-validating them (as scikit-learn's
+    Returns ``(rows, coef, coords)``: the rows with a non-empty support and, for
+    those rows only, the refitted coefficients and the baseline coordinates at
+    them (every other row is unchanged: zero coefficients, the result's
+    coordinates). Pass the same ``Z``/``U``/``phi``/``mask`` as to the solver;
+    ``check_input=False`` skips re-validating them (as scikit-learn's
     ``check_input``), for callers that just did.
     """
     prob = _prepare(Z, U, phi, mask, check=check_input)
     return _refit(prob, result.coef, result.residual, result.coords)
 
 
-def _refit(prob: _Problem, S: np.ndarray, R: np.ndarray, W: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _solve_normal_equations(gram: np.ndarray, rhs: np.ndarray, *, identity_dictionary: bool) -> np.ndarray:
+    """Batched solve of ``gram x = rhs``; minimum-norm (pseudo-inverse) where gram is singular.
+
+    With ``Phi = I`` the Gram matrix ``I - U_S G^+ U_S^T`` is singular only if a combination
+    of the selected metrics lies in the baseline (leverage 1), so an LU solve is tried first;
+    a group and all its members, in contrast, are routinely rank deficient.
+    """
+    if identity_dictionary:
+        try:
+            return np.linalg.solve(gram, rhs[..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            pass
+    return np.einsum("bij,bj->bi", np.linalg.pinv(gram, rtol=_GRAM_RTOL, hermitian=True), rhs)
+
+
+def _refit(prob: _Problem, S: np.ndarray, R: np.ndarray,
+           W: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Refit rows of S on their supports given ``R = P(z - Phi s)`` and coordinates ``W`` at S.
 
-    The normal equations read ``(Phi_S^T P Phi_S) s~ = Phi_S^T P z = (Phi_S^T P Phi_S) s_S
-    + Phi_S^T R``, so neither ``P z`` nor anything else of size n per sample is recomputed.
+    Returns (rows with a support, their refitted coefficients, their coordinates). The normal
+    equations read ``(Phi_S^T P Phi_S) s~ = Phi_S^T P z = (Phi_S^T P Phi_S) s_S + Phi_S^T R``,
+    so neither ``P z`` nor anything else of size n per sample is recomputed.
     """
-    out, coords = S.copy(), W.copy()
     rows = np.flatnonzero(np.any(S != 0, axis=1))
     if rows.size == 0:
-        return out, coords
+        return rows, np.zeros((0, S.shape[1])), np.zeros((0, W.shape[1]))
+    out, coords = S[rows], W[rows]
     # Supports differ per row: pad them to the largest size k and solve all the
     # k x k normal equations in one batched call (pads get an identity block).
     r_idx, c_idx = np.nonzero(S[rows])  # row-major: each row's support columns in order
@@ -585,10 +614,10 @@ def _refit(prob: _Problem, S: np.ndarray, R: np.ndarray, W: np.ndarray) -> tuple
     if k == 1:   # the common case: one coefficient per row
         g = gram[:, 0, 0]
         coef = np.where(g > _GRAM_RTOL, rhs[:, 0] / np.where(g > 0, g, 1.0), 0.0)[:, None]
-    else:   # minimum-norm solution when P_b Phi_S is rank deficient (e.g. a group and all its members)
-        coef = np.einsum("bij,bj->bi", np.linalg.pinv(gram, rtol=_GRAM_RTOL, hermitian=True), rhs)
+    else:
+        coef = _solve_normal_equations(gram, rhs, identity_dictionary=prob.phi is None)
     coef = coef * valid
-    out[rows[r_idx], c_idx] = coef[r_idx, slot]
+    out[r_idx, c_idx] = coef[r_idx, slot]
     # Coordinates move with the refit: w~ = w - G^+ U^T M Phi (s~ - s).
     delta = coef - current
     if prob.U.shape[1]:
@@ -599,8 +628,8 @@ def _refit(prob: _Problem, S: np.ndarray, R: np.ndarray, W: np.ndarray) -> tuple
             shift = (moved if m is None else moved * m) @ prob.U
         if ginv is not None:
             shift = np.einsum("brs,bs->br", ginv, shift)
-        coords[rows] -= shift
-    return out, coords
+        coords -= shift
+    return rows, out, coords
 
 
 def lasso_objective(
