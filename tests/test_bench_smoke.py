@@ -37,4 +37,4 @@ def test_bench_model_runs(capsys):
     assert mod.main(["--quick", "--batch", "64"]) == 0
     out = capsys.readouterr().out
     for n in (50, 200, 1000):
-        assert re.search(rf"^\s+{n}\s+[0-9,]+\s+[0-9.]+\s+[0-9]+%$", out, re.M), (n, out)
+        assert re.search(rf"^\s+{n}\s+[0-9,]+\s+[0-9,]+\s+[0-9.]+\s+[0-9]+%$", out, re.M), (n, out)
