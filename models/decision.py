@@ -306,10 +306,10 @@ class AlertTracker:
             setattr(self, name, np.concatenate([arr, np.zeros(k, dtype=arr.dtype)]))
 
     def keep(self, index: np.ndarray) -> None:
-        """Retain only the metrics at ``index``; callers drop only quiet metrics."""
+        """Retain only the metrics at ``index`` (callers drop only quiet metrics, or group columns)."""
         for name in self._PER_METRIC:
             setattr(self, name, getattr(self, name)[index])
         if self.incident is not None:
             renumber = {int(old): new for new, old in enumerate(index)}
-            self.incident.members = {renumber[m] for m in self.incident.members}
+            self.incident.members = {renumber[m] for m in self.incident.members if m in renumber}
             self.incident.resolved = {renumber[m] for m in self.incident.resolved if m in renumber}

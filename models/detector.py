@@ -164,6 +164,10 @@ class EntityDetector:
         self.phi = build_dictionary(self.n_metrics, self.groups)
         self._lipschitz = 1.0 if self.phi is None else float(np.linalg.norm(self.phi, 2) ** 2)
         self.warm_start = np.concatenate([self.warm_start[: self.n_metrics], np.zeros(len(self.groups))])
+        # The decision layer has one state per dictionary column: metrics, then groups (whose
+        # states restart when the groups change, which happens only as metrics come and go).
+        self.tracker.keep(np.arange(self.n_metrics))
+        self.tracker.extend(len(self.groups))
 
     def extend(self, log_mask) -> None:
         """Add metrics that appeared after warm-up; each is learned from scratch before it is scored."""
@@ -171,6 +175,7 @@ class EntityDetector:
         k = log_mask.size
         if self.warming_up:
             self._warmup_rows = [np.concatenate([r, np.full(k, np.nan)]) for r in self._warmup_rows]
+        self.tracker.keep(np.arange(self.n_metrics))   # group states go; set_groups re-adds them
         self.normaliser.extend(RobustNormaliser(log_mask, halflife=self.config.normaliser_halflife,
                                                      settle=self.config.min_samples))
         self.baseline.extend(k)
@@ -185,7 +190,7 @@ class EntityDetector:
         index = np.asarray(index, dtype=np.int64)
         self.normaliser.keep(index)
         self.baseline.keep(index)
-        self.tracker.keep(index)
+        self.tracker.keep(index)   # metric columns only: group states go, set_groups re-adds them
         self.residual_scale = self.residual_scale[index]
         self.admitted = self.admitted[index]
         self.warm_start = self.warm_start[index]
@@ -274,8 +279,7 @@ class EntityDetector:
             shift_sigma[support] = effect[support] / self.residual_scale   # zero wherever unobserved
             selected[support] = metric_effect(fit.coef[support], phi) != 0
             Z[support] -= effect[support]   # Z is ours: from here on it is the cleaned signal
-        effect_lasso = fit.coef if phi is None else metric_effect(fit.coef, phi)
-        transitions = self._decide(X, ts, support, selected, effect_lasso, shift_sigma, fit.residual, coords)
+        transitions = self._decide(X, ts, support, coef_rows, fit.coef, fit.residual, coords)
         self._learn(Z, present, mask, effect, coords, fit.residual, support, selected, transitions)
         if not modelled.all():
             self._fold_in(Z, present & settled & ~modelled, coords)
@@ -288,21 +292,39 @@ class EntityDetector:
         return self._pad(leading, BatchResult(transitions, shift_sigma, coords, residual_norm,
                                               fit.n_iter, fit.converged, units))
 
-    def _decide(self, X: np.ndarray, ts: np.ndarray, support: np.ndarray, selected: np.ndarray,
-                effect_lasso: np.ndarray, shift_sigma: np.ndarray, residual: np.ndarray,
-                coords: np.ndarray) -> list[Transition]:
-        """Feed the decision layer with just the metrics that are active or not quiet."""
+    def _decide(self, X: np.ndarray, ts: np.ndarray, support: np.ndarray, coef_rows: np.ndarray,
+                coef_lasso: np.ndarray, residual: np.ndarray, coords: np.ndarray) -> list[Transition]:
+        """Feed the decision layer, one state per dictionary column (metrics, then groups), with
+        just the columns that are active or not quiet.
+
+        A column's shift is its own refitted coefficient in its residual sigmas, so a group
+        shift is one alert line ("the database got slower") and does not also count as a
+        shift of each member.
+        """
+        n, phi = self.n_metrics, self.phi
+        B, p = coef_lasso.shape
+        scales = column_scales(self.residual_scale, phi)
         scored = self.normaliser.count >= self.config.warmup
+        if phi is not None:   # a group is scored when all its members are
+            scored = np.concatenate([scored, [bool(scored[g].all()) for g in self.groups]])
+        shift = np.zeros((B, p))
+        shift[support] = coef_rows / scales
         # Active: selected by the LASSO and still clear of the hysteresis bar after the refit (a
         # refit can shrink one of several correlated selections to almost nothing).
-        active = np.zeros_like(selected)
-        active[support] = selected[support] & (np.abs(shift_sigma[support]) >= self.config.decision.clear_sigma)
+        active = np.zeros((B, p), dtype=bool)
+        active[support] = (coef_lasso[support] != 0) & (np.abs(shift[support]) >= self.config.decision.clear_sigma)
         cols = np.flatnonzero((active[support].any(axis=0) & scored) | (self.tracker.state != QUIET))
-        d = self.residual_scale[cols]
-        stat = (effect_lasso[:, cols] + residual[:, cols]) / d
-        expected = self.normaliser.inverse_columns(coords @ self.baseline.U[cols].T, cols)
-        return self.tracker.step(active[:, cols] & scored[cols], shift_sigma[:, cols], stat, X[:, cols],
-                                 expected, ts, columns=cols)
+        correlation = residual[:, cols] if phi is None else residual @ phi[:, cols]
+        stat = (coef_lasso[:, cols] + correlation) / scales[cols]
+        value = np.full((B, cols.size), np.nan)
+        expected = np.full((B, cols.size), np.nan)
+        is_metric = cols < n
+        metric_cols = cols[is_metric]
+        value[:, is_metric] = X[:, metric_cols]
+        expected[:, is_metric] = self.normaliser.inverse_columns(coords @ self.baseline.U[metric_cols].T,
+                                                                 metric_cols)
+        return self.tracker.step(active[:, cols] & scored[cols], shift[:, cols], stat, value, expected, ts,
+                                 columns=cols)
 
     def _learn(self, cleaned: np.ndarray, present: np.ndarray, mask: np.ndarray | None, effect: np.ndarray,
                coords: np.ndarray, residual: np.ndarray, support: np.ndarray, selected: np.ndarray,
@@ -317,8 +339,11 @@ class EntityDetector:
         self._update_residual_scale(residual, mask, support, selected)
         self.normaliser.update(cleaned, present)
         for t in transitions:
-            if t.kind == "adapted":   # the shift becomes the new normal
-                self.normaliser.accept_shift(t.metrics, effect[t.row, t.metrics])
+            if t.kind == "adapted":   # the shift becomes the new normal, for a group on all its members
+                n = self.n_metrics
+                metrics = np.unique(np.concatenate([t.metrics[t.metrics < n]]
+                                                   + [self.groups[c - n] for c in t.metrics[t.metrics >= n]]))
+                self.normaliser.accept_shift(metrics, effect[t.row, metrics])
                 self.warm_start[t.metrics] = 0.0
 
     def _fold_in(self, Z: np.ndarray, learning: np.ndarray, coords: np.ndarray) -> None:

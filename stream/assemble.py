@@ -11,6 +11,7 @@ names absent for ``drop_after`` samples are dropped once they are quiet.
 from __future__ import annotations
 
 import fnmatch
+import re
 from dataclasses import dataclass
 
 import numpy as np
@@ -21,28 +22,56 @@ from shiftsieve.models.detector import DetectorConfig, EntityDetector
 from .decode import Vector
 
 
+_SERIES = re.compile(r'^[^{}]*\{(.*)\}$')
+_LABEL = re.compile(r'\s*([A-Za-z_][A-Za-z0-9_]*)\s*=\s*"((?:[^"\\]|\\.)*)"\s*(?:,|$)')
+
+
+def metric_labels(name: str) -> dict[str, str]:
+    """Labels written into a metric name in Prometheus series notation.
+
+    ``upstream_lat_ms{dependency="payments",quantile="0.99"}`` ->
+    ``{"dependency": "payments", "quantile": "0.99"}``; a plain name has none.  This is how
+    a vector message, whose ``labels`` describe the entity, says what each metric belongs to.
+    """
+    match = _SERIES.match(name)
+    if not match:
+        return {}
+    return {key: value for key, value in _LABEL.findall(match.group(1))}
+
+
 @dataclass(frozen=True)
 class MetricRules:
-    """Name-based metric settings: which metrics use a log scale and which form groups."""
+    """Name-based metric settings: which metrics use a log scale and which form groups.
+
+    Groups come from name patterns (``groups``: group name -> glob patterns) and from
+    labels (``group_by``: label keys; the metrics sharing a value of such a label, in the
+    name's series notation, form the group ``key=value``).
+    """
 
     log_patterns: tuple[str, ...] = ()
     groups: tuple[tuple[str, tuple[str, ...]], ...] = ()
+    group_by: tuple[str, ...] = ()
     max_metrics: int = 5000
     drop_after: int = 1440
 
     def log_scale(self, names: list[str]) -> np.ndarray:
-        return np.array([any(fnmatch.fnmatchcase(n, p) for p in self.log_patterns) for n in names], dtype=bool)
+        """Metrics whose base name (without a ``{...}`` label set) matches a log pattern."""
+        bases = [n.split("{", 1)[0] for n in names]
+        return np.array([any(fnmatch.fnmatchcase(b, p) for p in self.log_patterns) for b in bases], dtype=bool)
 
     def group_members(self, names: list[str]) -> tuple[list[str], list[np.ndarray]]:
         """Groups with at least two members among ``names``: their labels and member indices."""
-        labels, members = [], []
+        found: dict[str, list[int]] = {}
         for label, patterns in self.groups:
-            idx = np.array([i for i, n in enumerate(names) if any(fnmatch.fnmatchcase(n, p) for p in patterns)],
-                           dtype=np.int64)
-            if idx.size >= 2:
-                labels.append(label)
-                members.append(idx)
-        return labels, members
+            found[label] = [i for i, n in enumerate(names) if any(fnmatch.fnmatchcase(n, p) for p in patterns)]
+        if self.group_by:
+            for i, name in enumerate(names):
+                labels = metric_labels(name)
+                for key in self.group_by:
+                    if key in labels:
+                        found.setdefault(f"{key}={labels[key]}", []).append(i)
+        chosen = [(label, idx) for label, idx in found.items() if len(idx) >= 2]
+        return [label for label, _ in chosen], [np.array(idx, dtype=np.int64) for _, idx in chosen]
 
 
 class EntityStream:
@@ -108,6 +137,11 @@ class EntityStream:
         self._last_seen = np.concatenate([self._last_seen, np.full(len(new), self.detector.samples)])
         self._refresh_groups()
 
+    @property
+    def column_names(self) -> list[str]:
+        """Names of the detector's decision columns: the metrics, then ``group:<label>`` per group."""
+        return self.names + [f"group:{label}" for label in self.group_labels]
+
     def _refresh_groups(self) -> None:
         self.group_labels, members = self.rules.group_members(self.names)
         self.detector.set_groups(members)
@@ -117,7 +151,7 @@ class EntityStream:
         present = np.isfinite(X).any(axis=0)
         self._last_seen[present] = self.detector.samples
         stale = (self.detector.samples - self._last_seen > self.rules.drop_after) & \
-            (self.detector.tracker.state == QUIET)
+            (self.detector.tracker.state[: len(self.names)] == QUIET)
         if stale.any() and not self.detector.warming_up:
             keep = np.flatnonzero(~stale)
             self.detector.keep(keep)

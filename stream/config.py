@@ -84,6 +84,9 @@ SCHEMA: tuple[Setting, ...] = (
             _patterns, "metrics (by name pattern) modelled on a symmetric log scale"),
     Setting("model", "groups", dict, {}, "a table of group name -> non-empty list of glob patterns", _groups,
             "group columns: metrics matching a group's patterns can shift as one coefficient"),
+    Setting("model", "group_by", list, [], "a list of label names", _patterns,
+            "group columns from labels: metrics sharing a value of one of these labels (written in the "
+            "metric name as name{label=\"value\"}) can shift as one coefficient"),
     Setting("decision", "confirm_k", int, 3, "an integer in 1..63, at most confirm_m", _range(1, 63),
             "active samples needed among the last confirm_m to fire"),
     Setting("decision", "confirm_m", int, 5, "an integer in 1..63", _range(1, 63), "confirmation window"),

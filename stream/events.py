@@ -3,7 +3,9 @@
     {"ts": 1780000060.0, "entity": "checkout-3", "state": "firing", "incident": "checkout-3/1780000060",
      "metrics": [{"name": "lat_p99_ms", "shift_sigma": 6.2, "value": 240.0, "expected": 181.0}]}
 
-Extra fields: ``onset`` (firing: true when the event opens the incident),
+A group column of the dictionary is reported as one entry named ``group:<label>`` (its
+members in ``members``, ``value``/``expected`` null).  Extra fields: ``onset`` (firing:
+true when the event opens the incident),
 ``started`` (onset time of the incident), ``duration_seconds`` (resolved and
 adapted).
 """
@@ -33,20 +35,29 @@ def _number(x: float, digits: int) -> float | None:
     return float(f"{x:.{digits}g}")
 
 
+def _metric_entry(stream: "EntityStream", names: list[str], column: int, shift: float, value: float,
+                  expected: float) -> dict:
+    entry = {"name": names[column], "shift_sigma": round(float(shift), 2),
+             "value": _number(float(value), 6), "expected": _number(float(expected), 6)}
+    n = len(stream.names)
+    if column >= n:   # a group column: say which metrics it moved
+        entry["members"] = [stream.names[j] for j in stream.detector.groups[column - n]]
+    return entry
+
+
 def events_from_transitions(stream: "EntityStream", transitions: list[Transition],
                             ts: np.ndarray) -> Iterator[dict]:
     """One event per transition, metrics ranked by |shift_sigma| (descending, then by name)."""
+    names = stream.column_names
     for t in transitions:
-        order = sorted(range(t.metrics.size), key=lambda i: (-abs(float(t.shift[i])), stream.names[t.metrics[i]]))
+        order = sorted(range(t.metrics.size), key=lambda i: (-abs(float(t.shift[i])), names[t.metrics[i]]))
         event = {
             "ts": float(ts[t.row]),
             "entity": stream.entity,
             "state": t.kind,
             "incident": incident_id(stream.entity, t.onset_ts),
-            "metrics": [{"name": stream.names[t.metrics[i]],
-                         "shift_sigma": round(float(t.shift[i]), 2),
-                         "value": _number(float(t.value[i]), 6),
-                         "expected": _number(float(t.expected[i]), 6)} for i in order],
+            "metrics": [_metric_entry(stream, names, int(t.metrics[i]), t.shift[i], t.value[i], t.expected[i])
+                        for i in order],
             "started": t.onset_ts,
         }
         if t.kind == "firing":

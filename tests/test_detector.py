@@ -81,14 +81,18 @@ def test_missing_entries_and_a_late_metric():
     assert 2400 <= original[0][1] <= 2404
 
 
-def test_group_column_reports_a_group_shift_on_its_members():
+def test_group_column_reports_a_group_shift_as_one_coefficient():
     X, _ = shared_stream(4)
     group = np.arange(10, 16)
     X[2000:2100, group] += 3.0               # six metrics, 3 sigma each: one group coefficient
     det = EntityDetector(X.shape[1], np.zeros(X.shape[1], bool), CFG, groups=[group])
     events = run(det, X)
-    fired = {j for k, _, m, _ in events if k == "firing" for j in m}
-    assert fired == set(group.tolist())
+    group_column = X.shape[1]                # decision columns: metrics, then groups
+    assert [(k, m) for k, _, m, _ in events] == [("firing", [group_column]), ("resolved", [group_column])]
+    # Size at onset (one sample, estimate noise sd about 1): the unit-norm group column carries
+    # sqrt(6) * 3 noise sigmas; in residual sigmas (noise times sqrt(1 - leverage), about 0.95
+    # here) a little more.
+    assert events[0][3][0] == pytest.approx(np.sqrt(6) * 3.0 / 0.95, abs=3.0)
 
 
 def test_adaptation_accepts_a_persistent_shift():
