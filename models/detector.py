@@ -279,7 +279,7 @@ class EntityDetector:
             shift_sigma[support] = effect[support] / self.residual_scale   # zero wherever unobserved
             selected[support] = metric_effect(fit.coef[support], phi) != 0
             Z[support] -= effect[support]   # Z is ours: from here on it is the cleaned signal
-        transitions = self._decide(X, ts, support, coef_rows, fit.coef, fit.residual, coords)
+        transitions = self._decide(X, ts, support, coef_rows, fit.coef, fit.residual, coords, shift_sigma)
         self._learn(Z, present, mask, effect, coords, fit.residual, support, selected, transitions)
         if not modelled.all():
             self._fold_in(Z, present & settled & ~modelled, coords)
@@ -293,7 +293,8 @@ class EntityDetector:
                                               fit.n_iter, fit.converged, units))
 
     def _decide(self, X: np.ndarray, ts: np.ndarray, support: np.ndarray, coef_rows: np.ndarray,
-                coef_lasso: np.ndarray, residual: np.ndarray, coords: np.ndarray) -> list[Transition]:
+                coef_lasso: np.ndarray, residual: np.ndarray, coords: np.ndarray,
+                metric_shift: np.ndarray) -> list[Transition]:
         """Feed the decision layer, one state per dictionary column (metrics, then groups), with
         just the columns that are active or not quiet.
 
@@ -307,8 +308,11 @@ class EntityDetector:
         scored = self.normaliser.count >= self.config.warmup
         if phi is not None:   # a group is scored when all its members are
             scored = np.concatenate([scored, [bool(scored[g].all()) for g in self.groups]])
-        shift = np.zeros((B, p))
-        shift[support] = coef_rows / scales
+        if phi is None:   # columns are the metrics: their shifts are already computed
+            shift = metric_shift
+        else:
+            shift = np.zeros((B, p))
+            shift[support] = coef_rows / scales
         # Active: selected by the LASSO and still clear of the hysteresis bar after the refit (a
         # refit can shrink one of several correlated selections to almost nothing).
         active = np.zeros((B, p), dtype=bool)
