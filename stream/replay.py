@@ -32,6 +32,7 @@ class ReplaySummary:
     incidents: int
     events: int
     seconds: float
+    solver_unconverged: int = 0
 
     @property
     def rate(self) -> float:
@@ -43,6 +44,8 @@ class ReplaySummary:
                 f"({self.events} events) in {self.seconds:.2f} s ({self.rate:,.0f} vectors/s)")
         if self.rejected:
             line += f"; {self.rejected} lines rejected ({reasons})"
+        if self.solver_unconverged:   # tolerance not reached within model.max_iter: worth knowing
+            line += f"; solver: {self.solver_unconverged} vectors stopped at max_iter"
         return line
 
 
@@ -117,4 +120,5 @@ def replay(path: str | Path, config: Config, *, events_path: str | None = None,
     return ReplaySummary(vectors=accepted, rejected=sum(rejected_by_reason.values()),
                          rejected_by_reason=rejected_by_reason, entities=len(engine.entities),
                          incidents=len(engine.incidents), events=engine.counts.events,
+                         solver_unconverged=engine.counts.solver_unconverged,
                          seconds=time.perf_counter() - started)
