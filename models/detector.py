@@ -229,6 +229,9 @@ class EntityDetector:
         self.baseline.fit(Z)
         self.residual_scale = self._warmup_residual_scale(Z, self.baseline)
 
+    #: Metrics whose leverage exceeds this are not scored (see _decide): the baseline has a
+    #: direction of their own and leaves them less than 15 % of their noise as residual.
+    MAX_SCORED_LEVERAGE = 0.98
     #: Warm-up values beyond this many robust sigmas are clipped, so a wild outlier of the warm-up
     #: cannot own a baseline direction; recurring patterns such as batch jobs stay below it and are
     #: learned (clipping them harder would bend their direction).
@@ -305,7 +308,10 @@ class EntityDetector:
         n, phi = self.n_metrics, self.phi
         B, p = coef_lasso.shape
         scales = column_scales(self.residual_scale, phi)
-        scored = self.normaliser.count >= self.config.warmup
+        # A metric the baseline explains by itself (leverage near 1: a direction of its own)
+        # leaves no residual to judge it by; its "shifts" are noise amplified by 1/(1 - leverage).
+        leverage = np.einsum("ij,ij->i", self.baseline.U, self.baseline.U)
+        scored = (self.normaliser.count >= self.config.warmup) & (leverage <= self.MAX_SCORED_LEVERAGE)
         if phi is not None:   # a group is scored when all its members are
             scored = np.concatenate([scored, [bool(scored[g].all()) for g in self.groups]])
         if phi is None:   # columns are the metrics: their shifts are already computed

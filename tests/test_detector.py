@@ -102,3 +102,19 @@ def test_adaptation_accepts_a_persistent_shift():
     events = run(EntityDetector(X.shape[1], np.zeros(X.shape[1], bool), cfg), X)
     assert [(k, m) for k, _, m, _ in events] == [("firing", [4]), ("adapted", [4])]
     assert 1690 <= events[1][1] <= 1710
+
+
+def test_a_metric_that_owns_a_baseline_direction_is_not_scored():
+    """With a rank above the shared structure, the spare direction goes to the metric with the
+    most idiosyncratic energy; its residual is then almost nothing (leverage near 1) and its
+    refitted "shifts" are noise amplified by 1 / (1 - leverage) (projection algebra: the
+    residual of metric j keeps the share 1 - ||U_j||^2 of its own noise)."""
+    X, _ = shared_stream(7)
+    rng = np.random.default_rng(7)
+    X[:, 29] = 100 + 30.0 * rng.standard_normal(X.shape[0])   # a loner: no shared part, wide noise
+    X[2000:2100, 29] += 60.0                                      # a 2-sigma wobble of its own noise
+    det = EntityDetector(X.shape[1], np.zeros(X.shape[1], bool),
+                         DetectorConfig(warmup=300, rank=4, decision=DecisionConfig(adapt_after=0)))
+    events = run(det, X)
+    assert np.einsum("ij,ij->i", det.baseline.U, det.baseline.U)[29] > det.MAX_SCORED_LEVERAGE
+    assert all(29 not in m for _, _, m, _ in events)
