@@ -88,6 +88,7 @@ class EntityStream:
         self._last_seen = np.zeros(0, dtype=np.int64)
         self.ignored_metrics = 0
         self.last_ts = float("-inf")
+        self.last_residual_norm: float | None = None
         self.labels: dict[str, str] = {}
 
     def assemble(self, vectors: list[Vector]) -> tuple[np.ndarray, np.ndarray]:

@@ -2,6 +2,7 @@
 
     shiftsieve demo [--scenario NAME]                 replay a bundled incident, print the alerts
     shiftsieve replay INPUT --events OUT.jsonl [--config FILE] [--dead-letter FILE]
+    shiftsieve run [--config FILE] [--source URL] [--events FILE] [--listen HOST:PORT]
     shiftsieve evaluate EVENTS LABELS [--vectors N] [--json]
     shiftsieve config check [FILE]
 
@@ -43,6 +44,14 @@ def _parser() -> argparse.ArgumentParser:
     rep.add_argument("--dead-letter", metavar="FILE", help="write rejected lines here with line number and reason")
     rep.add_argument("--quiet", action="store_true", help="no progress bar and no summary")
 
+    run = sub.add_parser("run", help="run the detector as a service on a stream (stdin by default)")
+    run.add_argument("--config", metavar="FILE", help="TOML configuration")
+    run.add_argument("--source", metavar="URL", help="a file path, or - for stdin (default: source.url)")
+    run.add_argument("--events", metavar="FILE", help="append alert events as JSON lines")
+    run.add_argument("--listen", metavar="HOST:PORT", help="address of /metrics, /healthz, /readyz "
+                                                           "(default: http.listen, 127.0.0.1:9471)")
+    run.add_argument("--dead-letter", metavar="FILE", help="write rejected messages here with a reason")
+
     ev = sub.add_parser("evaluate", help="score alert events against a labels file")
     ev.add_argument("events", metavar="EVENTS")
     ev.add_argument("labels", metavar="LABELS")
@@ -71,6 +80,17 @@ def main(argv: list[str] | None = None) -> int:
             if not args.quiet:
                 print(f"shiftsieve: {summary.format()}", file=sys.stderr)
             return 0
+        if args.command == "run":
+            from .endpoints import parse_listen
+            from .service import Service
+            config = load_config(args.config)
+            if args.listen:
+                try:
+                    parse_listen(args.listen)
+                except ValueError as exc:
+                    raise ConfigError(f"--listen: {exc}") from None
+            return Service(config, source_url=args.source or config.source.url, events_path=args.events,
+                           dead_letter_path=args.dead_letter, listen=args.listen).run()
         if args.command == "evaluate":
             labels = load_labels(args.labels)
             result = evaluate(load_events(args.events), labels, vectors=args.vectors)

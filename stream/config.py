@@ -56,6 +56,11 @@ def _groups(v: Any) -> bool:
     return all(isinstance(k, str) and k and isinstance(p, list) and p and _patterns(p) for k, p in v.items())
 
 
+def _listen(v: Any) -> bool:
+    host, sep, port = v.rpartition(":")
+    return bool(sep) and port.isdigit() and 0 <= int(port) <= 65535
+
+
 SCHEMA: tuple[Setting, ...] = (
     Setting("model", "warmup", int, 540, "an integer in 10..100000", _range(10, 100_000),
             "vectors an entity collects before it is scored"),
@@ -104,6 +109,14 @@ SCHEMA: tuple[Setting, ...] = (
             "metrics one entity tracks; further names are ignored and counted"),
     Setting("engine", "drop_after", int, 1440, "an integer in 1..10000000", _range(1, 10_000_000),
             "samples a metric may be absent before it is dropped from its entity"),
+    Setting("source", "url", str, "-", "kafka://HOST:PORT[,HOST:PORT]/TOPIC?group=NAME, a file path, or - (stdin)",
+            lambda v: bool(v.strip()), "where `shiftsieve run` reads vector messages"),
+    Setting("http", "listen", str, "127.0.0.1:9471", "HOST:PORT", _listen,
+            "address of /metrics, /healthz and /readyz (loopback by default: expose it on purpose)"),
+    Setting("http", "max_series", int, 10_000, "an integer in 10..10000000", _range(10, 10_000_000),
+            "cap on exported per-entity and per-shift series; the rest are counted as withheld"),
+    Setting("http", "poll_seconds", float, 0.5, "a number of seconds in (0, 60]", _range(0, 60, lo_open=True),
+            "longest wait for input in one poll (also bounds how long SIGTERM takes)"),
     Setting("input", "max_message_bytes", int, 1 << 20, "an integer in 64..67108864", _range(64, 1 << 26),
             "largest accepted message or line"),
     Setting("input", "max_metrics_per_message", int, 10_000, "an integer in 1..1000000", _range(1, 1_000_000),

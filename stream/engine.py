@@ -51,6 +51,7 @@ class Engine:
         self._pending: dict[str, list[Vector]] = {}
         self.counts = EngineCounts()
         self.incidents: set[str] = set()
+        self.touched: set[str] = set()   # entities that processed vectors since the caller last cleared it
 
     @classmethod
     def from_config(cls, config: Config, **kwargs) -> "Engine":
@@ -97,6 +98,8 @@ class Engine:
         X, ts = stream.assemble(vectors)
         result = stream.detector.process(X, ts)
         stream.observe(X)
+        stream.last_residual_norm = float(result.residual_norm[-1])
+        self.touched.add(stream.entity)
         self.counts.processed += len(vectors)
         self.counts.solver_iterations += int(result.n_iter.sum())
         self.counts.solver_unconverged += int(np.count_nonzero(~result.converged))

@@ -1,0 +1,116 @@
+"""Prometheus export: active shifts, per-entity health and the process's own counters.
+
+Series follow the Prometheus naming conventions (base units, ``_total`` counters,
+``_seconds``).  Label values are escaped by prometheus-client, so no entity or
+metric name can break the exposition.  Per-shift and per-entity series are
+bounded by ``max_series``: beyond it new series are withheld and counted in
+``shiftsieve_series_withheld_total`` instead of growing the scrape without limit.
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING
+
+import numpy as np
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest
+
+from shiftsieve.models.decision import FIRING, PENDING, QUIET
+
+if TYPE_CHECKING:
+    from .engine import Engine
+
+#: Values of ``shiftsieve_metric_state``.
+STATE_VALUES = {PENDING: 1, FIRING: 2}
+
+
+class Exporter:
+    """Owns a registry; the service calls :meth:`observe_events` and :meth:`refresh`."""
+
+    def __init__(self, max_series: int = 10_000) -> None:
+        self.registry = CollectorRegistry(auto_describe=True)
+        self.max_series = max_series
+        r = self.registry
+        self.shift = Gauge("shiftsieve_shift_sigma", "Largest signed shift of a firing metric's current "
+                           "episode, in residual sigmas", ["entity", "metric"], registry=r)
+        self.state = Gauge("shiftsieve_metric_state", "Alert state of a metric that is not quiet "
+                           "(1 pending, 2 firing)", ["entity", "metric"], registry=r)
+        self.residual = Gauge("shiftsieve_entity_residual_norm_sigma", "Norm of the entity's last projected "
+                              "residual, in residual sigmas", ["entity"], registry=r)
+        self.rank = Gauge("shiftsieve_entity_baseline_rank", "Rank of the entity's baseline subspace",
+                          ["entity"], registry=r)
+        self.warming = Gauge("shiftsieve_entity_warming_up", "1 while the entity collects its warm-up",
+                             ["entity"], registry=r)
+        self.last_sample = Gauge("shiftsieve_entity_last_sample_timestamp_seconds", "Time stamp of the "
+                                 "entity's newest vector", ["entity"], registry=r)
+        self.withheld = Counter("shiftsieve_series_withheld_total", "Series not exported because of the "
+                                "series cap", registry=r)
+        self.consumed = Counter("shiftsieve_messages_consumed_total", "Messages read from the source", registry=r)
+        self.decoded = Counter("shiftsieve_messages_decoded_total", "Messages decoded into vectors or samples",
+                               registry=r)
+        self.dead = Counter("shiftsieve_messages_dead_lettered_total", "Messages dead-lettered, by reason",
+                            ["reason"], registry=r)
+        self.events = Counter("shiftsieve_alert_events_total", "Alert events emitted, by state", ["state"],
+                              registry=r)
+        self.batch_seconds = Histogram("shiftsieve_batch_duration_seconds", "Time to process one poll's "
+                                       "messages", registry=r,
+                                       buckets=(0.001, 0.003, 0.01, 0.03, 0.1, 0.3, 1.0, 3.0, 10.0))
+        self.iterations = Histogram("shiftsieve_solver_iterations", "Solver iterations per vector", registry=r,
+                                    buckets=(0, 1, 2, 4, 8, 16, 32, 64, 128, 256))
+        self.lag = Gauge("shiftsieve_consumer_lag_messages", "Messages behind the end of the partition",
+                         ["topic", "partition"], registry=r)
+        self.snapshot_age = Gauge("shiftsieve_snapshot_age_seconds", "Seconds since the last state snapshot",
+                                  registry=r)
+        self._shift_keys: dict[str, set[str]] = {}   # entity -> exported metric/column names
+        self._shift_count = 0
+        self._entity_keys: set[str] = set()
+
+    def _room(self) -> bool:
+        return self._shift_count + 4 * len(self._entity_keys) < self.max_series
+
+    def observe_events(self, events: list[dict]) -> None:
+        for event in events:
+            self.events.labels(event["state"]).inc()
+
+    def refresh(self, engine: "Engine", entities: list[str]) -> None:
+        """Bring the gauges of ``entities`` (those that just processed vectors) up to date."""
+        for name in entities:
+            stream = engine.entities[name]
+            det = stream.detector
+            if name not in self._entity_keys:
+                if not self._room():
+                    self.withheld.inc()
+                    continue
+                self._entity_keys.add(name)
+            self.rank.labels(name).set(det.baseline.rank)
+            self.warming.labels(name).set(1 if det.warming_up else 0)
+            self.last_sample.labels(name).set(stream.last_ts)
+            if stream.last_residual_norm is not None:
+                self.residual.labels(name).set(stream.last_residual_norm)
+            columns = stream.column_names
+            tracker = det.tracker
+            busy = np.flatnonzero(tracker.state != QUIET)   # few: loop over those only
+            exported = self._shift_keys.setdefault(name, set())
+            live = set()
+            for j in busy:
+                column = columns[j]
+                if column not in exported:
+                    if not self._room():
+                        self.withheld.inc()
+                        continue
+                    exported.add(column)
+                    self._shift_count += 1
+                live.add(column)
+                self.state.labels(name, column).set(STATE_VALUES[int(tracker.state[j])])
+                if tracker.state[j] == FIRING:
+                    self.shift.labels(name, column).set(float(tracker.peak_shift[j]))
+            for column in exported - live:   # resolved, adapted, quiet again, or the metric was dropped
+                exported.discard(column)
+                self._shift_count -= 1
+                for gauge in (self.state, self.shift):
+                    try:
+                        gauge.remove(name, column)
+                    except KeyError:
+                        pass
+
+    def exposition(self) -> bytes:
+        return generate_latest(self.registry)

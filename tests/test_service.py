@@ -1,0 +1,115 @@
+"""`shiftsieve run` as a process: stdin source, HTTP endpoints, exporter, SIGTERM."""
+
+import gzip
+import json
+import shutil
+import signal
+import socket
+import subprocess
+import sys
+import time
+import urllib.error
+import urllib.request
+
+import pytest
+
+from shiftsieve.stream.demo import scenarios
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def get(url: str) -> tuple[int, bytes]:
+    try:
+        with urllib.request.urlopen(url, timeout=5) as r:
+            return r.status, r.read()
+    except urllib.error.HTTPError as e:
+        return e.code, e.read()
+
+
+def wait_for(predicate, timeout=60.0):
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        value = predicate()
+        if value:
+            return value
+        time.sleep(0.2)
+    raise AssertionError("timed out")
+
+
+@pytest.fixture()
+def service(tmp_path):
+    port = free_port()
+    events = tmp_path / "events.jsonl"
+    proc = subprocess.Popen([sys.executable, "-m", "shiftsieve.stream.cli", "run", "--listen", f"127.0.0.1:{port}",
+                             "--events", str(events), "--dead-letter", str(tmp_path / "dead.jsonl")],
+                            stdin=subprocess.PIPE, stderr=subprocess.PIPE)
+    base = f"http://127.0.0.1:{port}"
+    wait_for(lambda: _up(base))
+    yield proc, base, events, tmp_path
+    if proc.poll() is None:
+        proc.kill()
+        proc.wait()
+
+
+def _up(base):
+    try:
+        return get(base + "/healthz")[0] == 200
+    except OSError:
+        return False
+
+
+def test_service_detects_exports_and_stops_cleanly_on_sigterm(service):
+    proc, base, events, tmp_path = service
+    lines = gzip.open(scenarios()["single_shift"]).read().splitlines()
+    # Everything up to the middle of the incident (db_pool_wait_p99_ms on booking-api-2 from ~sample 900).
+    cut = next(i for i, l in enumerate(lines) if json.loads(l)["ts"] >= 1780027004.0 + 30 * 20)
+    proc.stdin.write(b"\n".join(lines[:cut]) + b"\n" + b"{garbage\n")
+    proc.stdin.flush()
+
+    def firing_series():
+        status, body = get(base + "/metrics")
+        text = body.decode()
+        return status == 200 and 'shiftsieve_shift_sigma{entity="booking-api-2",metric="db_pool_wait_p99_ms"}' in text \
+            and text
+
+    text = wait_for(firing_series)
+    assert 'shiftsieve_metric_state{entity="booking-api-2",metric="db_pool_wait_p99_ms"} 2.0' in text
+    assert 'shiftsieve_messages_dead_lettered_total{reason="bad_json"} 1.0' in text
+    assert "shiftsieve_entity_baseline_rank{" in text and "shiftsieve_batch_duration_seconds_bucket" in text
+    assert get(base + "/readyz")[0] == 200
+    assert get(base + "/nothing")[0] == 404
+    request = urllib.request.Request(base + "/metrics", data=b"x", method="POST")
+    with pytest.raises(urllib.error.HTTPError) as refused:
+        urllib.request.urlopen(request, timeout=5)
+    assert refused.value.code == 405
+    if shutil.which("promtool"):   # Prometheus's own linter on our exposition
+        check = subprocess.run(["promtool", "check", "metrics"], input=text.encode(), capture_output=True)
+        assert check.returncode == 0, check.stdout + check.stderr
+
+    started = time.monotonic()
+    proc.send_signal(signal.SIGTERM)
+    assert proc.wait(timeout=10) == 0
+    assert time.monotonic() - started < 5          # bounded: one poll (0.5 s) plus the flush
+    firing = [json.loads(l) for l in events.read_text().splitlines()]
+    assert firing and firing[0]["entity"] == "booking-api-2" and firing[0]["state"] == "firing"
+    dead = [json.loads(l) for l in (tmp_path / "dead.jsonl").read_text().splitlines()]
+    assert [d["reason"] for d in dead] == ["bad_json"]
+
+
+def test_series_go_away_when_the_incident_resolves(service):
+    proc, base, events, _ = service
+    proc.stdin.write(gzip.open(scenarios()["single_shift"]).read())
+    proc.stdin.close()                              # end of input: the service finishes and exits 0
+    assert proc.wait(timeout=120) == 0
+    states = [json.loads(l)["state"] for l in events.read_text().splitlines()]
+    assert states == ["firing", "resolved"]
+
+
+def test_bad_listen_address_is_a_one_line_error():
+    proc = subprocess.run([sys.executable, "-m", "shiftsieve.stream.cli", "run", "--listen", "nowhere"],
+                          input=b"", capture_output=True, timeout=60)
+    assert proc.returncode == 2 and proc.stderr.decode().startswith("shiftsieve: error: --listen")
