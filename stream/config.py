@@ -56,6 +56,18 @@ def _groups(v: Any) -> bool:
     return all(isinstance(k, str) and k and isinstance(p, list) and p and _patterns(p) for k, p in v.items())
 
 
+def _one_of(*choices: str) -> Callable[[Any], bool]:
+    return lambda v: v in choices
+
+
+def _api_version(v: Any) -> bool:
+    parts = v.split(".")
+    return v == "auto" or (len(parts) == 3 and all(p.isdigit() for p in parts))
+
+
+SECRETS = {("kafka", "sasl_password")}
+
+
 def _listen(v: Any) -> bool:
     host, sep, port = v.rpartition(":")
     return bool(sep) and port.isdigit() and 0 <= int(port) <= 65535
@@ -111,6 +123,38 @@ SCHEMA: tuple[Setting, ...] = (
             "samples a metric may be absent before it is dropped from its entity"),
     Setting("source", "url", str, "-", "kafka://HOST:PORT[,HOST:PORT]/TOPIC?group=NAME, a file path, or - (stdin)",
             lambda v: bool(v.strip()), "where `shiftsieve run` reads vector messages"),
+    Setting("source", "encoding", str, "vector", "one of vector, sample, otlp_json", _one_of("vector", "sample", "otlp_json"),
+            "message encoding: the vector message, one sample per message, or OpenTelemetry OTLP/JSON"),
+    Setting("source", "entity_labels", list, ["service", "instance"], "a non-empty list of label names",
+            lambda v: bool(v) and _patterns(v), "labels whose values name the entity (sample and otlp_json)"),
+    Setting("source", "step_seconds", float, 30.0, "a number of seconds in (0, 86400]", _range(0, 86400, lo_open=True),
+            "samples are assembled into one vector per entity and step (sample and otlp_json)"),
+    Setting("source", "allowed_lateness_seconds", float, 60.0, "a number of seconds in [0, 86400]", _range(0, 86400),
+            "how long a step stays open for late samples before its vector is emitted"),
+    Setting("kafka", "api_version", str, "auto", "auto or a version such as 2.5.0", _api_version,
+            "Kafka protocol version the client speaks (auto = negotiate)"),
+    Setting("kafka", "security_protocol", str, "PLAINTEXT", "one of PLAINTEXT, SSL, SASL_PLAINTEXT, SASL_SSL",
+            _one_of("PLAINTEXT", "SSL", "SASL_PLAINTEXT", "SASL_SSL"), "Kafka security protocol"),
+    Setting("kafka", "sasl_mechanism", str, "", "empty, PLAIN, SCRAM-SHA-256 or SCRAM-SHA-512",
+            _one_of("", "PLAIN", "SCRAM-SHA-256", "SCRAM-SHA-512"), "SASL mechanism"),
+    Setting("kafka", "sasl_username", str, "", "a string", lambda v: True, "SASL user name"),
+    Setting("kafka", "sasl_password", str, "", "a string", lambda v: True,
+            "SASL password (prefer sasl_password_file or the environment; never printed)"),
+    Setting("kafka", "sasl_password_file", str, "", "a file path or empty", lambda v: True,
+            "file holding the SASL password (e.g. a mounted secret)"),
+    Setting("kafka", "ssl_cafile", str, "", "a file path or empty", lambda v: True, "CA bundle for TLS"),
+    Setting("kafka", "ssl_certfile", str, "", "a file path or empty", lambda v: True, "client certificate for TLS"),
+    Setting("kafka", "ssl_keyfile", str, "", "a file path or empty", lambda v: True, "client key for TLS"),
+    Setting("kafka", "session_timeout_ms", int, 10_000, "an integer in 1000..300000", _range(1000, 300_000),
+            "consumer-group session timeout: how fast a dead member's partitions move"),
+    Setting("kafka", "alert_topic", str, "", "a topic name or empty", lambda v: True,
+            "topic for alert events (empty = none)"),
+    Setting("kafka", "dead_letter_topic", str, "", "a topic name or empty", lambda v: True,
+            "topic for rejected messages with a reason header (empty = the --dead-letter file only)"),
+    Setting("state", "directory", str, "", "a directory path or empty", lambda v: True,
+            "where per-entity model snapshots are kept (empty = no snapshots)"),
+    Setting("state", "snapshot_seconds", float, 30.0, "a number of seconds in (0, 86400]",
+            _range(0, 86400, lo_open=True), "how often snapshots are written (offsets are committed after)"),
     Setting("http", "listen", str, "127.0.0.1:9471", "HOST:PORT", _listen,
             "address of /metrics, /healthz and /readyz (loopback by default: expose it on purpose)"),
     Setting("http", "max_series", int, 10_000, "an integer in 10..10000000", _range(10, 10_000_000),
@@ -247,7 +291,8 @@ def render(config: Config) -> str:
         if setting.section != section:
             section = setting.section
             lines.append(f"{'' if not lines else chr(10)}[{section}]")
-        lines.append(f"{setting.key} = {_toml_value(value)}  # {source}; {setting.help}")
+        shown = "\"***\"" if (setting.section, setting.key) in SECRETS and value else _toml_value(value)
+        lines.append(f"{setting.key} = {shown}  # {source}; {setting.help}")
     return "\n".join(lines) + "\n"
 
 

@@ -64,3 +64,24 @@ def test_config_check_command(tmp_path, capsys):
     err = capsys.readouterr().err
     assert err.startswith("shiftsieve: error: model.warmup") and err.count("\n") == 1
     assert main(["config", "check", str(tmp_path / "missing.toml")]) == 2
+
+
+def test_config_check_masks_secrets(capsys):
+    import os
+    os.environ["SHIFTSIEVE_KAFKA_SASL_PASSWORD"] = "hunter2-not-for-logs"
+    try:
+        assert main(["config", "check"]) == 0
+    finally:
+        del os.environ["SHIFTSIEVE_KAFKA_SASL_PASSWORD"]
+    out = capsys.readouterr().out
+    assert "hunter2-not-for-logs" not in out and 'sasl_password = "***"' in out
+
+
+def test_choice_settings_are_validated(tmp_path):
+    path = tmp_path / "c.toml"
+    path.write_text('[source]\nencoding = "protobuf"\n')
+    with pytest.raises(ConfigError, match="source.encoding"):
+        load_config(path, environ={})
+    path.write_text('[kafka]\napi_version = "two"\n')
+    with pytest.raises(ConfigError, match="kafka.api_version"):
+        load_config(path, environ={})
