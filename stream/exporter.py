@@ -49,6 +49,9 @@ class Exporter:
                                registry=r)
         self.dead = Counter("shiftsieve_messages_dead_lettered_total", "Messages dead-lettered, by reason",
                             ["reason"], registry=r)
+        self.samples = Counter("shiftsieve_samples_total", "Samples of the sample and otlp_json encodings, by "
+                               "outcome (accepted, late, duplicate, out_of_order, skipped, ...)", ["outcome"],
+                               registry=r)
         self.events = Counter("shiftsieve_alert_events_total", "Alert events emitted, by state", ["state"],
                               registry=r)
         self.batch_seconds = Histogram("shiftsieve_batch_duration_seconds", "Time to process one poll's "

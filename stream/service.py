@@ -21,14 +21,23 @@ import time
 from contextlib import ExitStack
 from pathlib import Path
 
+import orjson
+
 from .config import Config
-from .decode import DecodeError, decode_vector, encode_vector
+from .decode import DecodeError, Vector, decode_vector, encode_vector
 from .endpoints import Endpoints
 from .engine import Engine
 from .events import EventFileWriter
 from .exporter import Exporter
+from .otlp import decode_otlp
 from .readers import DeadLetterWriter, Rejected
 from .replay import decode_limits
+from .samples import Sample, SampleAssembler, decode_sample
+
+
+def _sample_message(sample: Sample) -> bytes:
+    """A refused sample as a one-sample message (what decode_sample reads), for its dead letter."""
+    return orjson.dumps({"ts": sample.ts, "name": sample.name, "labels": sample.labels, "value": sample.value})
 
 
 class LineSource:
@@ -94,6 +103,11 @@ class Service:
         self.listen = listen or config.http.listen
         self.exporter = Exporter(max_series=config.http.max_series)
         self.limits = decode_limits(config)
+        source = config.source
+        self.assembler = None if source.encoding == "vector" else SampleAssembler(
+            source.entity_labels, source.step_seconds, source.allowed_lateness_seconds,
+            max_entities=config.engine.max_entities, limits=self.limits)
+        self._sample_counts: dict[str, int] = {}
         self.stopping = threading.Event()
         self.ready = False
         self.endpoints: Endpoints | None = None
@@ -125,6 +139,8 @@ class Service:
                     for number, line in lines:
                         self._consume(engine, number, line, dead)
                     engine.flush()
+                    if self.assembler is not None:
+                        self._sync_sample_counts()
                     self.exporter.observe_events(emitted)
                     emitted.clear()
                     self.exporter.refresh(engine, sorted(engine.touched))
@@ -133,6 +149,8 @@ class Service:
                 if source.exhausted:
                     break
             self.ready = False
+            if self.assembler is not None:   # the steps still open are complete now
+                self._feed(engine, self.assembler.flush(), 0, dead)
             engine.flush()
             self.exporter.observe_events(emitted)
         return 0
@@ -140,15 +158,43 @@ class Service:
     def _consume(self, engine: Engine, number: int, line: bytes, dead: DeadLetterWriter | None) -> None:
         self.exporter.consumed.inc()
         try:
-            vector = decode_vector(line, self.limits)
+            vectors = self._vectors(line, number, dead)
         except DecodeError as exc:
             self._dead_letter(dead, number, line, exc.reason, str(exc))
             return
         self.exporter.decoded.inc()
-        refused = engine.feed(vector)
-        if refused is not None:
-            self._dead_letter(dead, number, encode_vector(vector), refused,
-                              f"vector of {vector.entity!r} at ts {vector.ts} refused: {refused}")
+        self._feed(engine, vectors, number, dead)
+
+    def _feed(self, engine: Engine, vectors: list[Vector], number: int, dead: DeadLetterWriter | None) -> None:
+        for vector in vectors:
+            refused = engine.feed(vector)
+            if refused is not None:
+                self._dead_letter(dead, number, encode_vector(vector), refused,
+                                  f"vector of {vector.entity!r} at ts {vector.ts} refused: {refused}")
+
+    def _vectors(self, raw: bytes, number: int, dead: DeadLetterWriter | None) -> list[Vector]:
+        """The complete vectors one message yields in the configured encoding (DecodeError if none)."""
+        if self.assembler is None:
+            return [decode_vector(raw, self.limits)]
+        if self.config.source.encoding == "sample":
+            samples = [decode_sample(raw, self.limits)]
+        else:
+            samples, skipped = decode_otlp(raw, self.limits)
+            if skipped:
+                self.exporter.samples.labels("skipped").inc(skipped)
+        vectors: list[Vector] = []
+        for sample in samples:
+            done, reason = self.assembler.add(sample)
+            vectors.extend(done)
+            if reason is not None:   # late, no entity label, over a cap: counted and kept
+                self._dead_letter(dead, number, _sample_message(sample), reason,
+                                  f"sample {sample.name!r} at ts {sample.ts} refused: {reason}")
+        return vectors
+
+    def _sync_sample_counts(self) -> None:
+        for outcome, total in self.assembler.counts.items():
+            self.exporter.samples.labels(outcome).inc(total - self._sample_counts.get(outcome, 0))
+        self._sample_counts = dict(self.assembler.counts)
 
     def _dead_letter(self, dead: DeadLetterWriter | None, number: int, raw: bytes, reason: str,
                      detail: str) -> None:
