@@ -50,7 +50,8 @@ class Exporter:
         self.dead = Counter("shiftsieve_messages_dead_lettered_total", "Messages dead-lettered, by reason",
                             ["reason"], registry=r)
         self.samples = Counter("shiftsieve_samples_total", "Samples of the sample and otlp_json encodings, by "
-                               "outcome (accepted, late, duplicate, out_of_order, skipped, ...)", ["outcome"],
+                               "outcome (accepted or a rejection reason; duplicate and out_of_order count accepted samples "
+                               "again, skipped counts unsupported OTLP points)", ["outcome"],
                                registry=r)
         self.events = Counter("shiftsieve_alert_events_total", "Alert events emitted, by state", ["state"],
                               registry=r)

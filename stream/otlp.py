@@ -104,9 +104,9 @@ def _metric(metric: Mapping, base: dict[str, str], limits: DecodeLimits, out: li
         return 0
     data_path = f"{path}.{kinds[0]}"
     points = _list(_object(metric[kinds[0]], data_path), "dataPoints", data_path)
-    skipped = 0
     if kinds[0] in _SKIPPED_KINDS:
         return len(points)
+    skipped = 0
     for n, point in enumerate(points):
         point_path = f"{data_path}.dataPoints[{n}]"
         point = _object(point, point_path)
@@ -149,7 +149,7 @@ def _time(value: Any) -> float | None:
         ns = int(value)
     else:
         return None
-    return ns / _NS if ns > 0 else None
+    return ns / _NS if 0 < ns < 1 << 64 else None
 
 
 def _double(value: Any) -> float | int | None:
@@ -180,74 +180,79 @@ def _attributes(value: Any, path: str) -> dict[str, str]:
         raise DecodeError("bad_attributes", f"{path}.attributes must be a list, not {_kind(value)}")
     out = {}
     for item in value:
-        key, value = _key_value(item, f"{path}.attributes")
-        out[key] = _label_text(value, f"{path}.attributes[{key!r}]")
+        # fast path, the common case: an ASCII key with an ASCII stringValue
+        if type(item) is dict and len(item) == 2:
+            key, any_value = item.get("key"), item.get("value")
+            if type(key) is str and key.isascii() and key and type(any_value) is dict and len(any_value) == 1:
+                text = any_value.get("stringValue")
+                if type(text) is str and text.isascii():
+                    out[key] = text
+                    continue
+        key, plain = _key_value(item, f"{path}.attributes")
+        out[key] = _label_text(plain)
     return out
 
 
-def _key_value(item: Any, path: str) -> tuple[str, Any]:
+def _key_value(item: Any, path: str, depth: int = 0) -> tuple[str, Any]:
     if not isinstance(item, Mapping):
         raise DecodeError("bad_attributes", f"{path} entries must be {{key, value}} objects, not {_kind(item)}")
     key = item.get("key")
     if not isinstance(key, str) or not key or not _is_utf8(key):
         raise DecodeError("bad_attributes", f"{path} has an entry without a usable key")
-    return key, _plain(item.get("value"), f"{path}[{key!r}]")
+    return key, _plain(item.get("value"), f"{path}[{key!r}]", depth)
 
 
-def _plain(value: Any, path: str) -> Any:
+def _plain(value: Any, path: str, depth: int) -> Any:
     """An AnyValue as a plain Python value (str, bool, int, float, list, dict or None)."""
     if value is None:
         return None
     if not isinstance(value, Mapping):
         raise DecodeError("bad_attributes", f"{path} value must be an AnyValue object, not {_kind(value)}")
-    kinds = [kind for kind in _ANY_VALUE if value.get(kind) is not None]
+    kinds = [kind for kind in _ANY_KINDS if value.get(kind) is not None]
     if len(kinds) > 1:
         raise DecodeError("bad_attributes", f"{path} value has more than one field: {', '.join(kinds)}")
     if not kinds:
         return None
-    result = _ANY_VALUE[kinds[0]](value[kinds[0]], path)
+    kind, item = kinds[0], value[kinds[0]]
+    if kind in _SCALARS:
+        result = _SCALARS[kind](item)
+    else:
+        if depth >= _MAX_DEPTH:
+            raise DecodeError("bad_attributes", f"{path} value nests arrays/kvlists deeper than {_MAX_DEPTH}")
+        items = item.get("values", []) if isinstance(item, Mapping) else None
+        if not isinstance(items, list):
+            result = None
+        elif kind == "arrayValue":
+            result = [_plain(x, f"{path}[{n}]", depth + 1) for n, x in enumerate(items)]
+        else:
+            result = dict(_key_value(x, path, depth + 1) for x in items)
     if result is None:
-        raise DecodeError("bad_attributes", f"{path} has a malformed {kinds[0]}: {_kind(value[kinds[0]])}")
+        raise DecodeError("bad_attributes", f"{path} has a malformed {kind}: {_kind(item)}")
     return result
 
 
-def _string(value: Any, path: str) -> str | None:
-    return value if isinstance(value, str) and _is_utf8(value) else None
-
-
-def _bool(value: Any, path: str) -> bool | None:
-    return value if isinstance(value, bool) else None
-
-
-def _int_value(value: Any, path: str) -> int | None:
+def _int64(value: Any) -> int | None:
     number = _int(value)
     return number if number is not None and -(1 << 63) <= number < (1 << 63) else None
 
 
-def _double_value(value: Any, path: str) -> float | None:
+def _double_value(value: Any) -> float | None:
     number = _double(value)
     return None if number is None else float(number)
 
 
-def _array(value: Any, path: str) -> list | None:
-    items = value.get("values", []) if isinstance(value, Mapping) else None
-    if not isinstance(items, list):
-        return None
-    return [_plain(item, f"{path}[{n}]") for n, item in enumerate(items)]
+_SCALARS = {
+    "stringValue": lambda x: x if isinstance(x, str) and _is_utf8(x) else None,
+    "bytesValue": lambda x: x if isinstance(x, str) and _is_utf8(x) else None,  # base64 text
+    "boolValue": lambda x: x if isinstance(x, bool) else None,
+    "intValue": _int64,
+    "doubleValue": _double_value,
+}
+_ANY_KINDS = (*_SCALARS, "arrayValue", "kvlistValue")
+_MAX_DEPTH = 16  # nesting of arrayValue / kvlistValue in one attribute
 
 
-def _kvlist(value: Any, path: str) -> dict | None:
-    items = value.get("values", []) if isinstance(value, Mapping) else None
-    if not isinstance(items, list):
-        return None
-    return dict(_key_value(item, path) for item in items)
-
-
-_ANY_VALUE = {"stringValue": _string, "boolValue": _bool, "intValue": _int_value, "doubleValue": _double_value,
-              "bytesValue": _string, "arrayValue": _array, "kvlistValue": _kvlist}
-
-
-def _label_text(value: Any, path: str) -> str:
+def _label_text(value: Any) -> str:
     """The label string of a plain attribute value."""
     if isinstance(value, str):
         return value
@@ -261,10 +266,7 @@ def _label_text(value: Any, path: str) -> str:
         if math.isfinite(value):
             return repr(value)
         return "NaN" if math.isnan(value) else ("+Inf" if value > 0 else "-Inf")
-    try:
-        return orjson.dumps(value).decode()
-    except orjson.JSONEncodeError:  # nesting deeper than orjson writes
-        raise DecodeError("bad_attributes", f"{path} value is nested too deeply") from None
+    return orjson.dumps(value).decode()
 
 
 def _list(obj: Mapping, key: str, path: str) -> list:

@@ -50,8 +50,10 @@ Decisions (other engineers rely on them):
 - `flush()` emits every open bucket and moves the watermark past them, so a sample
   arriving afterwards for a flushed bucket is late, never a second vector.
 
-Conservation: ``counts["added"] == counts["accepted"] + sum(counts[r] for r in
-REJECT_REASONS)``, and the series in all emitted vectors number ``accepted - duplicate``.
+`counts` holds one entry per outcome of `add` ("accepted" and each of `REJECT_REASONS`)
+plus two annotations of accepted samples ("duplicate", "out_of_order"). Conservation:
+samples added == ``counts["accepted"] + sum(counts[r] for r in REJECT_REASONS)``, and the
+series in all emitted vectors number ``accepted - duplicate``.
 """
 
 from __future__ import annotations
@@ -240,7 +242,7 @@ class SampleAssembler:
         self.limits = limits
         self.watermark = -math.inf
         self.counts: dict[str, int] = dict.fromkeys(
-            ("added", "accepted", "duplicate", "out_of_order", "emitted", *sorted(REJECT_REASONS)), 0)
+            ("accepted", "duplicate", "out_of_order", *sorted(REJECT_REASONS)), 0)
         self._entity_keys = frozenset(self.entity_labels)
         self._entities: dict[str, _Entity] = {}
         self._heap: list[tuple[float, str]] = []  # (bucket start, entity) of every open bucket
@@ -252,11 +254,9 @@ class SampleAssembler:
 
     def add(self, sample: Sample) -> tuple[list[Vector], str | None]:
         """Take one sample: the vectors it completes, and its rejection reason (None = accepted)."""
-        self.counts["added"] += 1
-        values = [sample.labels.get(key) for key in self.entity_labels]
-        if not all(values):
+        if not all(sample.labels.get(key) for key in self.entity_labels):
             return [], self._reject("no_entity")
-        entity = "/".join(values)  # type: ignore[arg-type]  # all are non-empty strings here
+        entity = "/".join(sample.labels[key] for key in self.entity_labels)
         if len(entity) > self.limits.max_entity_length:
             return [], self._reject("bad_entity")
         try:
@@ -268,11 +268,11 @@ class SampleAssembler:
         start = math.floor(sample.ts / self.step) * self.step
         if self._closed(start):
             return [], self._reject("late")
-        emitted = []
+        emitted: list[Vector] = []
         if sample.ts > self.watermark:
             self.watermark = sample.ts
             emitted = self._emit(self._closed)
-        return emitted, self._place(entity, values, start, name, sample)
+        return emitted, self._place(entity, start, name, sample)
 
     def flush(self) -> list[Vector]:
         """Emit every open bucket (end of input, shutdown); later samples for them are late."""
@@ -284,13 +284,13 @@ class SampleAssembler:
     def _closed(self, start: float) -> bool:
         return start + self.step + self.allowed_lateness <= self.watermark
 
-    def _place(self, entity: str, values: list[str | None], start: float, name: str,
-               sample: Sample) -> str | None:
+    def _place(self, entity: str, start: float, name: str, sample: Sample) -> str | None:
         state = self._entities.get(entity)
         if state is None:
             if len(self._entities) >= self.max_entities:
                 return self._reject("entity_limit")
-            state = self._entities[entity] = _Entity(dict(zip(self.entity_labels, values)), {}, start)  # type: ignore[arg-type]
+            labels = {key: sample.labels[key] for key in self.entity_labels}
+            state = self._entities[entity] = _Entity(labels, {}, start)
         bucket = state.buckets.get(start)
         if bucket is None:
             if len(state.buckets) >= self.max_open_buckets:
@@ -320,7 +320,6 @@ class SampleAssembler:
             if not state.buckets:
                 del self._entities[entity]
             out.append(Vector(start, entity, {n: bucket[n][1] for n in sorted(bucket)}, dict(state.labels)))
-        self.counts["emitted"] += len(out)
         return out
 
     def _reject(self, reason: str) -> str:

@@ -20,10 +20,14 @@ import threading
 import time
 from contextlib import ExitStack
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import orjson
 
-from .config import Config
+if TYPE_CHECKING:
+    from .kafka import KafkaSettings
+
+from .config import Config, ConfigError
 from .decode import DecodeError, Vector, decode_vector, encode_vector
 from .endpoints import Endpoints
 from .engine import Engine
@@ -91,6 +95,59 @@ class LineSource:
         return out
 
 
+def kafka_settings(config: Config, url: str) -> "KafkaSettings":
+    """Client settings from a ``kafka://`` URL and the [kafka] section (secrets from file or env)."""
+    from .kafka import KafkaSettings, parse_kafka_url
+    bootstrap, topic, group = parse_kafka_url(url)
+    k = config.kafka
+    password = k.sasl_password
+    if k.sasl_password_file:
+        try:
+            password = Path(k.sasl_password_file).read_text().strip()
+        except OSError as exc:
+            raise ConfigError(f"kafka.sasl_password_file: cannot read {k.sasl_password_file}: "
+                              f"{exc.strerror}") from None
+    version = None if k.api_version == "auto" else tuple(int(p) for p in k.api_version.split("."))
+    return KafkaSettings(bootstrap=bootstrap, topic=topic, group=group, api_version=version,
+                         security_protocol=k.security_protocol, sasl_mechanism=k.sasl_mechanism or None,
+                         sasl_username=k.sasl_username or None, sasl_password=password or None,
+                         ssl_cafile=k.ssl_cafile or None, ssl_certfile=k.ssl_certfile or None,
+                         ssl_keyfile=k.ssl_keyfile or None, session_timeout_ms=k.session_timeout_ms,
+                         max_message_bytes=config.input.max_message_bytes)
+
+
+class KafkaInput:
+    """A consumer-group source: records as (offset, value); offsets are committed by the service
+    only after the poll's effects are done (at-least-once: a crash replays uncommitted records)."""
+
+    exhausted = False   # a topic does not end
+
+    def __init__(self, settings: "KafkaSettings") -> None:
+        from .kafka import KafkaSource
+        self.source = KafkaSource(settings)
+        self._next: dict[tuple[str, int], int] = {}
+
+    def poll(self, timeout: float) -> list[tuple[int, bytes]]:
+        records = self.source.poll(timeout)
+        for r in records:
+            self._next[(r.topic, r.partition)] = r.offset + 1
+        return [(r.offset, r.value) for r in records]
+
+    @property
+    def ready(self) -> bool:
+        return bool(self.source.connected and self.source.assignment())
+
+    def commit(self) -> None:
+        if self._next and self.source.commit(self._next):
+            self._next = {}
+
+    def lag(self) -> dict[tuple[str, int], int]:
+        return self.source.lag()
+
+    def close(self) -> None:
+        self.source.close()
+
+
 class Service:
     """Wires source, engine, sinks, exporter and endpoints; :meth:`run` until stopped."""
 
@@ -108,6 +165,7 @@ class Service:
             source.entity_labels, source.step_seconds, source.allowed_lateness_seconds,
             max_entities=config.engine.max_entities, limits=self.limits)
         self._sample_counts: dict[str, int] = {}
+        self.kafka_sink = None
         self.stopping = threading.Event()
         self.ready = False
         self.endpoints: Endpoints | None = None
@@ -125,12 +183,26 @@ class Service:
                 sinks.append(stack.enter_context(EventFileWriter(self.events_path)))
             dead = stack.enter_context(DeadLetterWriter(self.dead_letter_path, source=self.source_url)) \
                 if self.dead_letter_path else None
+            kafka = self.source_url.startswith("kafka://")
+            if kafka:
+                settings = kafka_settings(self.config, self.source_url)
+                source = KafkaInput(settings)
+                stack.callback(source.close)
+                if self.config.kafka.alert_topic or self.config.kafka.dead_letter_topic:
+                    from .kafka import KafkaSink
+                    self.kafka_sink = KafkaSink(settings)
+                    stack.callback(self.kafka_sink.close)
+                    stack.callback(self.kafka_sink.flush)
+                    if self.config.kafka.alert_topic:
+                        topic = self.config.kafka.alert_topic
+                        sinks.append(lambda event: self.kafka_sink.send_event(topic, event))
+            else:
+                source = LineSource(self.source_url, max_line=self.limits.max_bytes)
             emitted: list[dict] = []
             engine = Engine.from_config(self.config, sinks=[*sinks, emitted.append])
-            source = LineSource(self.source_url, max_line=self.limits.max_bytes)
             self.endpoints = Endpoints(self.listen, self.exporter.exposition, lambda: self.ready).start()
             stack.callback(self.endpoints.stop)
-            self.ready = True
+            self.ready = not kafka
             poll = self.config.http.poll_seconds
             while not self.stopping.is_set():
                 lines = source.poll(poll)
@@ -146,6 +218,11 @@ class Service:
                     self.exporter.refresh(engine, sorted(engine.touched))
                     engine.touched.clear()
                     self.exporter.batch_seconds.observe(time.perf_counter() - started)
+                if kafka:
+                    source.commit()   # the poll's effects (events, dead letters) are out
+                    self.ready = source.ready
+                    for (topic, partition), behind in source.lag().items():
+                        self.exporter.lag.labels(topic, str(partition)).set(behind)
                 if source.exhausted:
                     break
             self.ready = False
@@ -179,7 +256,8 @@ class Service:
         if self.config.source.encoding == "sample":
             samples = [decode_sample(raw, self.limits)]
         else:
-            samples, skipped = decode_otlp(raw, self.limits)
+            # Resource attributes other than the entity's would land in every metric name.
+            samples, skipped = decode_otlp(raw, self.limits, resource_labels=self.config.source.entity_labels)
             if skipped:
                 self.exporter.samples.labels("skipped").inc(skipped)
         vectors: list[Vector] = []
@@ -201,3 +279,6 @@ class Service:
         self.exporter.dead.labels(reason).inc()
         if dead is not None:
             dead.write(Rejected(line=number, reason=reason, detail=detail, raw=raw))
+        if self.kafka_sink is not None and self.config.kafka.dead_letter_topic:
+            self.kafka_sink.send_dead_letter(self.config.kafka.dead_letter_topic, raw, reason,
+                                             f"{self.source_url}@{number}")

