@@ -52,6 +52,7 @@ class Engine:
         self.counts = EngineCounts()
         self.incidents: set[str] = set()
         self.touched: set[str] = set()   # entities that processed vectors since the caller last cleared it
+        self.touched_since_snapshot: set[str] = set()
 
     @classmethod
     def from_config(cls, config: Config, **kwargs) -> "Engine":
@@ -86,6 +87,11 @@ class Engine:
             self._run(stream)
         return None
 
+    def adopt(self, stream: EntityStream) -> None:
+        """Take over an entity restored from a snapshot."""
+        self.entities[stream.entity] = stream
+        self._pending[stream.entity] = []
+
     def flush(self) -> None:
         """Run every partial batch (end of input, or after each poll in the service)."""
         for entity, pending in self._pending.items():
@@ -100,6 +106,7 @@ class Engine:
         stream.observe(X)
         stream.last_residual_norm = float(result.residual_norm[-1])
         self.touched.add(stream.entity)
+        self.touched_since_snapshot.add(stream.entity)
         self.counts.processed += len(vectors)
         self.counts.solver_iterations += int(result.n_iter.sum())
         self.counts.solver_unconverged += int(np.count_nonzero(~result.converged))

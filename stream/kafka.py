@@ -83,7 +83,12 @@ def _check_host(hostport: str) -> None:
 
 def _one_line(exc: BaseException) -> str:
     """A short one-line description of an error (never contains settings)."""
+    name = type(exc).__name__
     text = " ".join(str(exc).split())
+    if text.startswith(name):
+        text = text[len(name):].lstrip(": ")
+    if text in ("", "None"):
+        text = ""
     if len(text) > 300:
         text = text[:297] + "..."
     return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
@@ -275,19 +280,32 @@ class _State:
         self.last_error_at: float | None = None
         self.errors_total = 0
         self._ok = False
+        self._logged_at = float("-inf")
+        self._suppressed = 0
 
     def ok(self) -> None:
         with self._lock:
             self._ok = True
 
+    _LOG_EVERY_S = 10.0
+
     def fail(self, what: str, exc: BaseException | str) -> None:
         text = exc if isinstance(exc, str) else _one_line(exc)
+        message = f"{what}: {text}"
+        now = time.monotonic()
         with self._lock:
             self._ok = False
-            self.last_error = f"{what}: {text}"
+            repeated = message == self.last_error and now - self._logged_at < self._LOG_EVERY_S
+            self.last_error = message
             self.last_error_at = time.time()
             self.errors_total += 1
-        log.warning("kafka %s failed: %s", what, text)
+            if repeated:
+                self._suppressed += 1
+                return
+            suppressed, self._suppressed, self._logged_at = self._suppressed, 0, now
+        # an outage repeats the same error for every poll or message: log it once per _LOG_EVERY_S
+        more = f" (and {suppressed} more like the previous one)" if suppressed else ""
+        log.warning("kafka %s failed: %s%s", what, text, more)
 
 
 def _live_connection(client: Any) -> bool | None:
@@ -318,7 +336,7 @@ class KafkaSource:
         self._callback_thread: threading.Thread | None = None
         self._callback_lost = False
         self._pending: list[Any] = []
-        self._try_create()
+        self._try_create(budget_s=2.0)
 
     # -- state ---------------------------------------------------------------------------
     @property
@@ -343,7 +361,7 @@ class KafkaSource:
         return self._state.errors_total
 
     # -- construction --------------------------------------------------------------------
-    def _try_create(self, budget_s: float = 5.0) -> bool:
+    def _try_create(self, budget_s: float) -> bool:
         if self._consumer is not None:
             return True
         if self._closed or time.monotonic() < self._next_attempt:
@@ -463,6 +481,10 @@ class KafkaSource:
         if self._consumer is None or self._closed:
             self._state.fail("commit", "no consumer (broker unreachable or closed)")
             return False
+        if not self._in_callback() and not self.connected:
+            # do not block the caller for the commit timeout: it retries after its next snapshot
+            self._state.fail("commit", "not connected to the broker; offsets not committed")
+            return False
         kafka = _import_kafka()
         from kafka.structs import OffsetAndMetadata  # noqa: PLC0415
         payload = {}
@@ -481,7 +503,7 @@ class KafkaSource:
                 return False
             return True
         try:
-            self._consumer.commit(payload, timeout_ms=10_000)
+            self._consumer.commit(payload, timeout_ms=5_000)
         except TypeError:  # kafka-python 2.x has no timeout_ms on commit
             try:
                 self._consumer.commit(payload)
@@ -505,7 +527,7 @@ class KafkaSource:
 
     def lag(self) -> dict[tuple[str, int], int]:
         """End offset minus position per assigned partition; ``{}`` when it cannot be had now."""
-        if self._consumer is None or self._closed or self._in_callback():
+        if self._consumer is None or self._closed or self._in_callback() or not self.connected:
             return {}
         c = self._consumer
         try:
@@ -672,16 +694,32 @@ class KafkaSink:
             return False
         return True
 
-    def close(self) -> None:
+    def close(self, timeout_s: float = 5) -> None:
+        """Deliver what is queued (up to ``timeout_s``; briefly when disconnected), then close."""
         if self._closed:
             return
+        connected = self.connected
         self._closed = True
         producer, self._producer = self._producer, None
-        if producer is not None:
-            try:
-                producer.close(timeout=5)
-            except Exception as exc:  # noqa: BLE001
-                self._state.fail("close", exc)
+        if producer is None:
+            return
+        try:
+            producer.flush(timeout=timeout_s if connected else min(timeout_s, 0.5))
+        except Exception as exc:  # noqa: BLE001  (broker away: undelivered messages are dropped, counted)
+            self._state.fail("close", exc)
+            # kafka-python's close() raises from its flush and leaves the sender thread running when
+            # messages are still pending: abort them first, so close() below completes
+            sender = getattr(producer, "_sender", None)
+            if sender is not None:
+                try:
+                    sender.force_close()
+                    sender.join(5)
+                except Exception:  # noqa: BLE001
+                    pass
+        try:
+            producer.close(timeout=0)
+        except Exception as exc:  # noqa: BLE001
+            self._state.fail("close", exc)
 
     def __enter__(self) -> "KafkaSink":
         return self

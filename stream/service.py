@@ -37,6 +37,7 @@ from .otlp import decode_otlp
 from .readers import DeadLetterWriter, Rejected
 from .replay import decode_limits
 from .samples import Sample, SampleAssembler, decode_sample
+from .state import StateDirectory
 
 
 def _sample_message(sample: Sample) -> bytes:
@@ -77,16 +78,16 @@ class LineSource:
             os.close(fd)
             self._queue.put(None)
 
-    def poll(self, timeout: float) -> list[tuple[int, bytes]]:
-        """Up to ``max_batch`` lines; waits at most ``timeout`` seconds for the first one."""
-        out: list[tuple[int, bytes]] = []
+    def poll(self, timeout: float) -> list[tuple[int, bytes, str]]:
+        """Up to ``max_batch`` (line number, line, "") triples; waits at most ``timeout`` s for the first."""
+        out: list[tuple[int, bytes, str]] = []
         try:
             item = self._queue.get(timeout=timeout)
             while True:
                 if item is None:
                     self.exhausted = True
                     break
-                out.append(item)
+                out.append((*item, ""))
                 if len(out) >= self.max_batch:
                     break
                 item = self._queue.get_nowait()
@@ -126,12 +127,17 @@ class KafkaInput:
         from .kafka import KafkaSource
         self.source = KafkaSource(settings)
         self._next: dict[tuple[str, int], int] = {}
+        self._committed: dict[tuple[str, int], int] = {}
 
-    def poll(self, timeout: float) -> list[tuple[int, bytes]]:
+    def poll(self, timeout: float) -> list[tuple[int, bytes, str]]:
         records = self.source.poll(timeout)
         for r in records:
             self._next[(r.topic, r.partition)] = r.offset + 1
-        return [(r.offset, r.value) for r in records]
+        return [(r.offset, r.value, f"{r.topic}/{r.partition}") for r in records]
+
+    def positions(self) -> dict[str, int]:
+        """Next offset per partition consumed so far, as snapshots record them."""
+        return {f"{t}/{p}": o for (t, p), o in {**self._committed, **self._next}.items()}
 
     @property
     def ready(self) -> bool:
@@ -139,6 +145,7 @@ class KafkaInput:
 
     def commit(self) -> None:
         if self._next and self.source.commit(self._next):
+            self._committed.update(self._next)
             self._next = {}
 
     def lag(self) -> dict[tuple[str, int], int]:
@@ -166,6 +173,9 @@ class Service:
             max_entities=config.engine.max_entities, limits=self.limits)
         self._sample_counts: dict[str, int] = {}
         self.kafka_sink = None
+        self.state = StateDirectory(config.state.directory) if config.state.directory else None
+        self._covered: dict[str, dict[str, int]] = {}   # entity -> offsets its restored snapshot includes
+        self._snapshot_at = time.monotonic()
         self.stopping = threading.Event()
         self.ready = False
         self.endpoints: Endpoints | None = None
@@ -200,6 +210,7 @@ class Service:
                 source = LineSource(self.source_url, max_line=self.limits.max_bytes)
             emitted: list[dict] = []
             engine = Engine.from_config(self.config, sinks=[*sinks, emitted.append])
+            self._restore(engine)
             self.endpoints = Endpoints(self.listen, self.exporter.exposition, lambda: self.ready).start()
             stack.callback(self.endpoints.stop)
             self.ready = not kafka
@@ -208,8 +219,8 @@ class Service:
                 lines = source.poll(poll)
                 if lines:
                     started = time.perf_counter()
-                    for number, line in lines:
-                        self._consume(engine, number, line, dead)
+                    for number, line, partition in lines:
+                        self._consume(engine, number, line, dead, partition)
                     engine.flush()
                     if self.assembler is not None:
                         self._sync_sample_counts()
@@ -218,8 +229,12 @@ class Service:
                     self.exporter.refresh(engine, sorted(engine.touched))
                     engine.touched.clear()
                     self.exporter.batch_seconds.observe(time.perf_counter() - started)
-                if kafka:
-                    source.commit()   # the poll's effects (events, dead letters) are out
+                if self.state is not None and time.monotonic() - self._snapshot_at >= self.config.state.snapshot_seconds:
+                    self._snapshot(engine, source)
+                if kafka and (self.state is None or not engine.touched_since_snapshot):
+                    # Offsets are committed once what they cover is durable: the events are out
+                    # and, with a state directory, every entity's snapshot includes them.
+                    source.commit()
                     self.ready = source.ready
                     for (topic, partition), behind in source.lag().items():
                         self.exporter.lag.labels(topic, str(partition)).set(behind)
@@ -230,9 +245,14 @@ class Service:
                 self._feed(engine, self.assembler.flush(), 0, dead)
             engine.flush()
             self.exporter.observe_events(emitted)
+            if self.state is not None:
+                self._snapshot(engine, source)
+            if kafka:
+                source.commit()
         return 0
 
-    def _consume(self, engine: Engine, number: int, line: bytes, dead: DeadLetterWriter | None) -> None:
+    def _consume(self, engine: Engine, number: int, line: bytes, dead: DeadLetterWriter | None,
+                 partition: str = "") -> None:
         self.exporter.consumed.inc()
         try:
             vectors = self._vectors(line, number, dead)
@@ -240,14 +260,40 @@ class Service:
             self._dead_letter(dead, number, line, exc.reason, str(exc))
             return
         self.exporter.decoded.inc()
-        self._feed(engine, vectors, number, dead)
+        self._feed(engine, vectors, number, dead, partition)
 
-    def _feed(self, engine: Engine, vectors: list[Vector], number: int, dead: DeadLetterWriter | None) -> None:
+    def _feed(self, engine: Engine, vectors: list[Vector], number: int, dead: DeadLetterWriter | None,
+              partition: str = "") -> None:
         for vector in vectors:
+            covered = self._covered.get(vector.entity, {}).get(partition)
+            if covered is not None and number < covered:
+                continue   # already inside the entity's restored snapshot: exactly once in model state
             refused = engine.feed(vector)
             if refused is not None:
                 self._dead_letter(dead, number, encode_vector(vector), refused,
                                   f"vector of {vector.entity!r} at ts {vector.ts} refused: {refused}")
+
+    def _restore(self, engine: Engine) -> None:
+        """Load every entity snapshot of the state directory into the engine."""
+        if self.state is None:
+            return
+        restored, errors = self.state.load_all(engine.rules, engine.detector_config)
+        for error in errors:   # a corrupt snapshot costs its entity's state, never the service
+            print(f"shiftsieve: warning: {error}; that entity warms up again", file=sys.stderr)
+        for entity, (stream, offsets) in restored.items():
+            engine.adopt(stream)
+            self._covered[entity] = offsets
+        self._snapshot_at = time.monotonic()
+
+    def _snapshot(self, engine: Engine, source) -> None:
+        """Write the snapshots of the entities that changed, covering everything consumed so far."""
+        positions = source.positions() if hasattr(source, "positions") else {}
+        for entity in sorted(engine.touched_since_snapshot):
+            self.state.save(engine.entities[entity], positions)
+            self._covered[entity] = positions
+        engine.touched_since_snapshot.clear()
+        self._snapshot_at = time.monotonic()
+        self.exporter.snapshot_age.set(0.0)
 
     def _vectors(self, raw: bytes, number: int, dead: DeadLetterWriter | None) -> list[Vector]:
         """The complete vectors one message yields in the configured encoding (DecodeError if none)."""

@@ -140,14 +140,15 @@ class TansuBroker:
             proc.wait(timeout=5)
 
 
-def start_tansu(scratch: Path) -> TansuBroker:
+def start_tansu(scratch: Path, port: int | None = None) -> TansuBroker:
     """Find the binary and start a broker; RuntimeError with the reason if it cannot be had."""
+    scratch.mkdir(parents=True, exist_ok=True)
     binary, how = find_tansu(scratch / "bin")
     if binary is None:
         raise RuntimeError(how)
     last: Exception | None = None
-    for attempt in range(3):  # the free port may be taken between probing and binding
-        broker = TansuBroker(binary, scratch / f"tansu-{attempt}.log")
+    for attempt in range(1 if port else 3):  # a free port may be taken between probing and binding
+        broker = TansuBroker(binary, scratch / f"tansu-{attempt}.log", port=port)
         try:
             broker.start()
             broker.found_by = how
@@ -181,12 +182,15 @@ def kafka_broker(tansu_broker) -> str:
 
 @pytest.fixture
 def tansu_factory(tmp_path):
-    """Factory for private brokers a test may stop (``tansu_factory() -> TansuBroker``); all stopped after."""
+    """Factory for private brokers a test may stop: ``tansu_factory(port=None) -> TansuBroker``.
+
+    All are stopped after the test. Pass the port of a stopped one to bring "it" back (empty).
+    """
     started: list[TansuBroker] = []
 
-    def make() -> TansuBroker:
+    def make(port: int | None = None) -> TansuBroker:
         try:
-            broker = start_tansu(tmp_path / f"tansu{len(started)}")
+            broker = start_tansu(tmp_path / f"tansu{len(started)}", port=port)
         except RuntimeError as exc:
             _unavailable(str(exc))
         started.append(broker)

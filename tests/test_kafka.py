@@ -120,6 +120,55 @@ def test_consume_commit_and_resume_in_group(kafka_broker, kafka_topic):
         second.close()
 
 
+def test_rebalance_to_second_member_commits_on_revoke(kafka_broker, kafka_topic):
+    """Two members: the first commits in on_revoke, so nothing is read twice after the move."""
+    topic = kafka_topic(partitions=4)
+    sent = produce(kafka_broker, topic, 20, partitions=4)
+    consumed: dict[str, list[Record]] = {"a": [], "b": []}
+    owned: dict[str, list] = {"a": [], "b": []}
+    sources: dict[str, KafkaSource] = {}
+
+    def listeners(name):
+        def on_assign(parts):
+            owned[name] = parts
+
+        def on_revoke(parts):
+            nxt = {}
+            for r in consumed[name]:
+                if (r.topic, r.partition) in parts:
+                    nxt[(r.topic, r.partition)] = max(nxt.get((r.topic, r.partition), 0), r.offset + 1)
+            assert sources[name].commit(nxt) is True
+            owned[name] = []
+        return on_assign, on_revoke
+
+    sources["a"] = KafkaSource(settings(kafka_broker, topic, group="pair"), *listeners("a"))
+    try:
+        consumed["a"] += poll_until(sources["a"], 20)
+        assert len(consumed["a"]) == 20 and len(owned["a"]) == 4
+        t0 = time.monotonic()
+        sources["b"] = KafkaSource(settings(kafka_broker, topic, group="pair"), *listeners("b"))
+        while time.monotonic() - t0 < 30 and not (owned["a"] and owned["b"]):
+            for name in ("a", "b"):
+                consumed[name] += sources[name].poll(0.2)
+        print(f"second member got partitions after {time.monotonic() - t0:.2f} s")
+        assert sorted(owned["a"] + owned["b"]) == [(topic, p) for p in range(4)]
+        assert owned["a"] and owned["b"]
+        more = produce(kafka_broker, topic, 8, partitions=4)
+        end = time.monotonic() + 10
+        while time.monotonic() < end and len(consumed["a"]) + len(consumed["b"]) < 28:
+            for name in ("a", "b"):
+                consumed[name] += sources[name].poll(0.2)
+        got = sorted((r.partition, r.offset) for name in ("a", "b") for r in consumed[name])
+        assert got == sorted((p, o) for p, o, _ in sent + more)  # every record exactly once
+        after = {name: [r for r in consumed[name] if (r.partition, r.offset) in {(p, o) for p, o, _ in more}]
+                 for name in ("a", "b")}
+        for name in ("a", "b"):  # the new records went to the partitions' new owners
+            assert {(topic, r.partition) for r in after[name]} <= set(owned[name])
+    finally:
+        for source in sources.values():
+            source.close()
+
+
 def test_seek_and_lag(kafka_broker, kafka_topic):
     topic = kafka_topic(partitions=1)
     producer = KafkaProducer(bootstrap_servers=kafka_broker, api_version=API, linger_ms=50)
@@ -199,12 +248,22 @@ def test_broker_going_away_does_not_raise(tansu_factory, kafka_topic_name):
         for _ in range(3):
             assert source.poll(0.2) == []
         assert source.commit({(topic, 0): 1}) is False and source.last_error
-        assert source.lag() == {} or all(v >= 0 for v in source.lag().values())
+        assert source.lag() == {}
+        # the broker comes back on the same port (empty: memory storage): the source reconnects
+        tansu_factory(port=broker.port)
+        t2 = time.monotonic()
+        while not source.connected and time.monotonic() - t2 < 15:
+            source.poll(0.25)
+        assert source.connected
+        # the producer knows the topic's metadata: sends are buffered (retried until delivery_timeout),
+        # flush says they are not confirmed, close drops and counts them -- none of it raises
         t1 = time.monotonic()
-        results = [sink.send_event(topic, {"entity": "b"}) for _ in range(5)]
-        sink.flush(3)
+        for _ in range(5):
+            sink.send_event(topic, {"entity": "b"})
+        assert sink.flush(2) is False and not sink.connected and sink.last_error
+        sink.close()
+        assert sink.failed_total == 5 and sink.sent_total == 1
         assert time.monotonic() - t1 < 15
-        assert sink.failed_total >= 1 or not all(results)
     finally:
         source.close()
         sink.close()

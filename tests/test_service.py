@@ -174,3 +174,22 @@ def test_one_sample_per_message_encoding_assembles_the_same_incident(tmp_path):
                            "SHIFTSIEVE_SOURCE_STEP_SECONDS": "30"})
     onsets = [e for e in events if e.get("onset")]
     assert [(e["entity"], e["metrics"][0]["name"]) for e in onsets] == [("booking-api-2", "db_pool_wait_p99_ms")]
+
+
+def test_restart_restores_models_from_the_state_directory(tmp_path):
+    """Stopped after 800 of 1500 samples and restarted on the rest: the second process restores
+    every entity (no new warm-up, which alone would take 540 samples and swallow the fault at
+    sample 900) and finds the incident."""
+    lines = gzip.open(scenarios()["single_shift"]).read().splitlines()
+    cut = next(i for i, l in enumerate(lines) if json.loads(l)["ts"] >= 1780000000.0 + 30 * 800)
+    env = {"SHIFTSIEVE_STATE_DIRECTORY": f'"{tmp_path / "state"}"'}
+    (tmp_path / "a").mkdir()
+    (tmp_path / "b").mkdir()
+    first = _run_service(tmp_path / "a", b"\n".join(lines[:cut]) + b"\n", env)
+    assert first == []
+    assert len(list((tmp_path / "state").iterdir())) == 4      # one snapshot per entity
+    second = _run_service(tmp_path / "b", b"\n".join(lines[cut:]) + b"\n", env)
+    onsets = [(e["entity"], e["metrics"][0]["name"]) for e in second if e.get("onset")]
+    assert onsets == [("booking-api-2", "db_pool_wait_p99_ms")]
+    alone = _run_service(tmp_path / "b", b"\n".join(lines[cut:]) + b"\n", {})   # control: no state
+    assert ("booking-api-2", "db_pool_wait_p99_ms") not in [(e["entity"], e["metrics"][0]["name"]) for e in alone]
