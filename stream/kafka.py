@@ -168,9 +168,13 @@ class KafkaSettings:
             "bootstrap_servers": list(self.bootstrap),
             "client_id": CLIENT_ID,
             "security_protocol": self.security_protocol,
+            # a broker that comes back is found within seconds (kafka-python's default backs off to 30 s)
+            "reconnect_backoff_max_ms": 5000,
         }
         if self.api_version is not None:
-            kw["api_version"] = self.api_version
+            # kafka-python knows protocol versions as (major, minor): (2, 5, 0) -> (2, 5), else it warns
+            v = self.api_version
+            kw["api_version"] = v[:2] if len(v) == 3 and v[2] == 0 else v
         if self.sasl_mechanism is not None:
             kw["sasl_mechanism"] = self.sasl_mechanism
             kw["sasl_plain_username"] = self.sasl_username
@@ -321,6 +325,8 @@ class KafkaSource:
     """Consumer in a group; enable_auto_commit=False; offsets committed only via commit(offsets)."""
 
     _RETRY_SECONDS = 1.0
+    #: longest a poll() stays in the consumer to finish a group join (see _join_in_flight)
+    rebalance_wait_s = 15.0
 
     def __init__(self, settings: KafkaSettings, on_assign: Callback | None = None,
                  on_revoke: Callback | None = None):
@@ -455,19 +461,46 @@ class KafkaSource:
                 time.sleep(left)  # keep the caller's loop from spinning while the broker is away
             return []
         left_ms = max(0, int((timeout_s - (time.monotonic() - start)) * 1000))
+        out: list[Record] = []
         try:
-            batches = self._consumer.poll(timeout_ms=left_ms, max_records=self.settings.max_poll_records)
+            self._collect(self._consumer.poll(timeout_ms=left_ms, max_records=self.settings.max_poll_records), out)
+            # Stay while a group join is in flight (see _join_in_flight): bounded by rebalance_wait_s.
+            deadline = start + max(timeout_s, self.rebalance_wait_s)
+            while not out and self._join_in_flight() and time.monotonic() < deadline:
+                step_ms = max(1, min(250, int((deadline - time.monotonic()) * 1000)))
+                self._collect(self._consumer.poll(timeout_ms=step_ms, max_records=self.settings.max_poll_records), out)
         except Exception as exc:  # noqa: BLE001
             self._state.fail("poll", exc)
-            return []
+            return out
         self._state.ok()
-        out: list[Record] = []
+        return out
+
+    @staticmethod
+    def _collect(batches: dict, out: list[Record]) -> None:
         for tp in sorted(batches, key=lambda t: (t.topic, t.partition)):
             for m in batches[tp]:
                 out.append(Record(m.topic, m.partition, m.offset, m.key,
                                   m.value if m.value is not None else b"",
                                   int(m.timestamp) if m.timestamp is not None else -1))
-        return out
+
+    def _join_in_flight(self) -> bool:
+        """Whether a JoinGroup/SyncGroup round started by poll() has not been consumed yet.
+
+        kafka-python 3.0.12 (coordinator/base.py, join_group_async) only applies a
+        join result to a poll() that is awaiting it: when the round completes
+        between two polls, the next poll sees a finished task and sends a *new*
+        JoinGroup, which starts another rebalance for the whole group. With
+        work between polls (the service processes each batch) a group of two
+        then never settles -- measured here: 0.3 s between polls, no settlement
+        in 40 s; polling on, 5 s. So poll() does not return while a round is
+        in flight. Uses a private attribute; without it (other versions) no wait.
+        """
+        coordinator = getattr(self._consumer, "_coordinator", None)
+        task = getattr(coordinator, "_join_task", None)
+        try:
+            return task is not None and not task.is_done
+        except Exception:  # noqa: BLE001
+            return False
 
     def commit(self, offsets: dict[tuple[str, int], int]) -> bool:
         """Commit the *next* offset to read per partition. True when the broker accepted it.

@@ -129,13 +129,21 @@ class TansuBroker:
         self.startup_s = time.monotonic() - t0
 
     def stop(self) -> None:
+        """Terminate, wait, kill. Tansu drains open client connections for ~5 s on SIGTERM."""
         proc, self.proc = self.proc, None
         if proc is None or proc.poll() is not None:
             return
         proc.terminate()
         try:
-            proc.wait(timeout=5)
+            proc.wait(timeout=8)
         except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait(timeout=5)
+
+    def kill(self) -> None:
+        """SIGKILL: the broker crashes (no drain), for failure tests."""
+        proc, self.proc = self.proc, None
+        if proc is not None and proc.poll() is None:
             proc.kill()
             proc.wait(timeout=5)
 
