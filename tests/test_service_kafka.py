@@ -34,13 +34,13 @@ def test_produce_detect_alert_topic_and_dead_letters(kafka_broker, kafka_topic, 
     env = {**os.environ, "SHIFTSIEVE_KAFKA_API_VERSION": "2.5.0", "SHIFTSIEVE_KAFKA_SESSION_TIMEOUT_MS": "6000",
            "SHIFTSIEVE_KAFKA_ALERT_TOPIC": f'"{alerts}"', "SHIFTSIEVE_KAFKA_DEAD_LETTER_TOPIC": f'"{dead}"'}
     proc = subprocess.Popen([sys.executable, "-m", "shiftsieve.stream.cli", "run", "--listen",
-                             f"127.0.0.1:{free_port()}", "--source", f"kafka://{kafka_broker}/{source}?group=det"],
+                             f"127.0.0.1:{free_port()}", "--source", f"kafka://{kafka_broker}/{source}?group={source}-det"],
                             env=env, stderr=subprocess.PIPE)
     try:
         consumer = KafkaConsumer(alerts, dead, bootstrap_servers=kafka_broker, api_version=API,
                                  auto_offset_reset="earliest", consumer_timeout_ms=1000)
         got_alert = got_dead = None
-        deadline = time.monotonic() + 120
+        deadline = time.monotonic() + 180
         while time.monotonic() < deadline and not (got_alert and got_dead):
             for message in consumer:
                 if message.topic == alerts and got_alert is None:
