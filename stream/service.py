@@ -236,8 +236,8 @@ class Service:
                     # and, with a state directory, every entity's snapshot includes them.
                     source.commit()
                     self.ready = source.ready
-                    for (topic, partition), behind in source.lag().items():
-                        self.exporter.lag.labels(topic, str(partition)).set(behind)
+                    for (lag_topic, partition), behind in source.lag().items():
+                        self.exporter.lag.labels(lag_topic, str(partition)).set(behind)
                 if source.exhausted:
                     break
             self.ready = False
