@@ -134,9 +134,8 @@ def check_size(size: int, limits: DecodeLimits = DEFAULT_LIMITS) -> None:
                                        f"{limits.max_bytes:,} bytes (max_bytes)")
 
 
-def decode_vector(raw: bytes | bytearray | memoryview | str,
-                  limits: DecodeLimits = DEFAULT_LIMITS) -> Vector:
-    """Parse and validate one JSON vector message; raises DecodeError only."""
+def load_json(raw: bytes | bytearray | memoryview | str, limits: DecodeLimits = DEFAULT_LIMITS) -> Any:
+    """Size check, then parse (orjson; the stdlib fallback reads NaN/Infinity); DecodeError only."""
     if isinstance(raw, str):
         size = len(raw)  # a lower bound of the UTF-8 size, exact when it already exceeds the limit
         if size <= limits.max_bytes < 4 * size:
@@ -149,10 +148,15 @@ def decode_vector(raw: bytes | bytearray | memoryview | str,
         raise DecodeError("bad_input", f"message must be bytes or str, not {type(raw).__name__}")
     check_size(size, limits)
     try:
-        obj = orjson.loads(raw)
+        return orjson.loads(raw)
     except orjson.JSONDecodeError as exc:
-        obj = _parse_lenient(raw, exc)
-    return vector_from_object(obj, limits)
+        return _parse_lenient(raw, exc)
+
+
+def decode_vector(raw: bytes | bytearray | memoryview | str,
+                  limits: DecodeLimits = DEFAULT_LIMITS) -> Vector:
+    """Parse and validate one JSON vector message; raises DecodeError only."""
+    return vector_from_object(load_json(raw, limits), limits)
 
 
 def encode_vector(vector: Vector) -> bytes:

@@ -68,7 +68,7 @@ from typing import Any
 
 import orjson
 
-from .decode import (DEFAULT_LIMITS, DecodeError, DecodeLimits, Vector, _is_number, _is_utf8, _kind, _labels,
+from .decode import (DEFAULT_LIMITS, load_json, DecodeError, DecodeLimits, Vector, _is_number, _is_utf8, _kind, _labels,
                      _parse_lenient, _show, _timestamp, check_size)
 
 __all__ = [
@@ -106,25 +106,6 @@ class Sample:
     name: str
     labels: dict[str, str]
     value: float | None
-
-
-def load_json(raw: bytes | bytearray | memoryview | str, limits: DecodeLimits = DEFAULT_LIMITS) -> Any:
-    """Size check, then parse as `decode_vector` does (orjson; stdlib fallback reads NaN/Infinity)."""
-    if isinstance(raw, str):
-        size = len(raw)  # a lower bound of the UTF-8 size, exact when it already exceeds the limit
-        if size <= limits.max_bytes < 4 * size:
-            size = len(raw.encode("utf-8", "surrogatepass"))
-    elif isinstance(raw, (bytes, bytearray)):
-        size = len(raw)
-    elif isinstance(raw, memoryview):
-        size = raw.nbytes
-    else:
-        raise DecodeError("bad_input", f"message must be bytes or str, not {type(raw).__name__}")
-    check_size(size, limits)
-    try:
-        return orjson.loads(raw)
-    except orjson.JSONDecodeError as exc:
-        return _parse_lenient(raw, exc)
 
 
 def decode_sample(raw: bytes | bytearray | memoryview | str, limits: DecodeLimits = DEFAULT_LIMITS) -> Sample:
