@@ -92,6 +92,15 @@ class Engine:
         self.entities[stream.entity] = stream
         self._pending[stream.entity] = []
 
+    def drop(self, entity: str) -> None:
+        """Forget an entity (its partition moved to another process); pending vectors must be flushed first."""
+        if self._pending.get(entity):
+            raise RuntimeError(f"entity {entity!r} still has unprocessed vectors: flush before dropping it")
+        self.entities.pop(entity, None)
+        self._pending.pop(entity, None)
+        self.touched.discard(entity)
+        self.touched_since_snapshot.discard(entity)
+
     def flush(self) -> None:
         """Run every partial batch (end of input, or after each poll in the service)."""
         for entity, pending in self._pending.items():

@@ -58,6 +58,10 @@ class Exporter:
         self.batch_seconds = Histogram("shiftsieve_batch_duration_seconds", "Time to process one poll's "
                                        "messages", registry=r,
                                        buckets=(0.001, 0.003, 0.01, 0.03, 0.1, 0.3, 1.0, 3.0, 10.0))
+        self.ingest_delay = Histogram("shiftsieve_ingest_delay_seconds", "Time from the Kafka timestamp of "
+                                      "a poll's oldest record until the gauges include it", registry=r,
+                                      buckets=(0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0,
+                                               30.0, 60.0))
         self.iterations = Histogram("shiftsieve_solver_iterations", "Solver iterations per vector", registry=r,
                                     buckets=(0, 1, 2, 4, 8, 16, 32, 64, 128, 256))
         self.lag = Gauge("shiftsieve_consumer_lag_messages", "Messages behind the end of the partition",
@@ -115,6 +119,23 @@ class Exporter:
                         gauge.remove(name, column)
                     except KeyError:
                         pass
+
+    def forget(self, entity: str) -> None:
+        """Remove every series of ``entity`` (it moved to another process or was evicted)."""
+        for column in self._shift_keys.pop(entity, set()):
+            self._shift_count -= 1
+            for gauge in (self.state, self.shift):
+                try:
+                    gauge.remove(entity, column)
+                except KeyError:
+                    pass
+        if entity in self._entity_keys:
+            self._entity_keys.discard(entity)
+            for gauge in (self.rank, self.warming, self.last_sample, self.residual):
+                try:
+                    gauge.remove(entity)
+                except KeyError:
+                    pass
 
     def exposition(self) -> bytes:
         return generate_latest(self.registry)

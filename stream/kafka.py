@@ -9,7 +9,9 @@ Built on kafka-python (3.x). The service never sees kafka-python objects:
 - `KafkaSource` is one member of a consumer group, subscribed to one topic,
   with ``enable_auto_commit=False``: offsets move only through `commit`, which
   the service calls after the snapshot that covers them. ``on_assign`` /
-  ``on_revoke`` get sorted lists of ``(topic, partition)``.
+  ``on_revoke`` get sorted lists of ``(topic, partition)``; ``on_lost`` (default:
+  ``on_revoke``) gets partitions taken away without a clean revoke (the member
+  was fenced), whose offsets can no longer be committed.
 - `KafkaSink` writes alert events (JSON, key = entity) and dead letters (the
   original bytes, headers ``reason`` and ``source``).
 
@@ -330,10 +332,11 @@ class KafkaSource:
     _END_OFFSETS_EVERY_S = 5.0
 
     def __init__(self, settings: KafkaSettings, on_assign: Callback | None = None,
-                 on_revoke: Callback | None = None):
+                 on_revoke: Callback | None = None, on_lost: Callback | None = None):
         self.settings = settings
         self._on_assign = on_assign
         self._on_revoke = on_revoke
+        self._on_lost = on_lost or on_revoke
         self._state = _State()
         self._consumer: Any = None
         self._closed = False
@@ -414,7 +417,7 @@ class KafkaSource:
                 await source._await_pending()
 
             async def on_partitions_lost(self, lost):
-                source._dispatch(source._on_revoke, lost, "on_revoke", lost=True)
+                source._dispatch(source._on_lost, lost, "on_revoke", lost=True)
                 await source._await_pending()
 
             async def on_partitions_assigned(self, assigned):

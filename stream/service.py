@@ -37,7 +37,7 @@ from .otlp import decode_otlp
 from .readers import DeadLetterWriter, Rejected
 from .replay import decode_limits
 from .samples import Sample, SampleAssembler, decode_sample
-from .state import StateDirectory
+from .state import SnapshotError, StateDirectory
 
 
 def _sample_message(sample: Sample) -> bytes:
@@ -118,21 +118,46 @@ def kafka_settings(config: Config, url: str) -> "KafkaSettings":
 
 
 class KafkaInput:
-    """A consumer-group source: records as (offset, value); offsets are committed by the service
-    only after the poll's effects are done (at-least-once: a crash replays uncommitted records)."""
+    """A consumer-group source: records as (offset, value, "topic/partition"); offsets are committed
+    by the service only after the poll's effects are done (at-least-once: a crash replays
+    uncommitted records).  ``on_revoke`` / ``on_lost`` / ``on_assign`` get "topic/partition" names."""
 
     exhausted = False   # a topic does not end
 
-    def __init__(self, settings: "KafkaSettings") -> None:
+    def __init__(self, settings: "KafkaSettings", on_revoke=None, on_lost=None, on_assign=None) -> None:
         from .kafka import KafkaSource
-        self.source = KafkaSource(settings)
+        self._hooks = {"revoke": on_revoke, "lost": on_lost, "assign": on_assign}
+        self.source = KafkaSource(settings, on_assign=self._assigned, on_revoke=self._revoked,
+                                  on_lost=self._lost)
         self._next: dict[tuple[str, int], int] = {}
         self._committed: dict[tuple[str, int], int] = {}
+        self.timestamps_ms: list[int] = []   # Kafka timestamps of the last poll's records
+
+    def _call(self, hook: str, parts: list[tuple[str, int]]) -> None:
+        if self._hooks[hook] is not None:
+            self._hooks[hook]([f"{t}/{p}" for t, p in parts])
+
+    def _revoked(self, parts: list[tuple[str, int]]) -> None:
+        self._call("revoke", parts)   # the service snapshots and commits before the partitions move
+        self._forget(parts)
+
+    def _lost(self, parts: list[tuple[str, int]]) -> None:
+        self._call("lost", parts)
+        self._forget(parts)
+
+    def _assigned(self, parts: list[tuple[str, int]]) -> None:
+        self._call("assign", parts)
+
+    def _forget(self, parts: list[tuple[str, int]]) -> None:
+        for tp in parts:
+            self._next.pop(tp, None)
+            self._committed.pop(tp, None)
 
     def poll(self, timeout: float) -> list[tuple[int, bytes, str]]:
         records = self.source.poll(timeout)
         for r in records:
             self._next[(r.topic, r.partition)] = r.offset + 1
+        self.timestamps_ms = [r.timestamp_ms for r in records]
         return [(r.offset, r.value, f"{r.topic}/{r.partition}") for r in records]
 
     def positions(self) -> dict[str, int]:
@@ -175,6 +200,11 @@ class Service:
         self.kafka_sink = None
         self.state = StateDirectory(config.state.directory) if config.state.directory else None
         self._covered: dict[str, dict[str, int]] = {}   # entity -> offsets its restored snapshot includes
+        self._partition_of: dict[str, str] = {}   # entity -> the "topic/partition" its vectors come from
+        self._lock = threading.RLock()   # engine and state: the poll loop vs. rebalance callbacks
+        self.engine: Engine | None = None
+        self.source = None
+        self.dead: DeadLetterWriter | None = None
         self._snapshot_at = time.monotonic()
         self.stopping = threading.Event()
         self.ready = False
@@ -191,49 +221,46 @@ class Service:
             sinks = []
             if self.events_path:
                 sinks.append(stack.enter_context(EventFileWriter(self.events_path)))
-            dead = stack.enter_context(DeadLetterWriter(self.dead_letter_path, source=self.source_url)) \
+            self.dead = stack.enter_context(DeadLetterWriter(self.dead_letter_path, source=self.source_url)) \
                 if self.dead_letter_path else None
             kafka = self.source_url.startswith("kafka://")
             if kafka:
                 settings = kafka_settings(self.config, self.source_url)
-                source = KafkaInput(settings)
-                stack.callback(source.close)
                 if self.config.kafka.alert_topic or self.config.kafka.dead_letter_topic:
                     from .kafka import KafkaSink
                     self.kafka_sink = KafkaSink(settings)
                     stack.callback(self.kafka_sink.close)
                     stack.callback(self.kafka_sink.flush)
                     if self.config.kafka.alert_topic:
-                        topic = self.config.kafka.alert_topic
-                        sinks.append(lambda event: self.kafka_sink.send_event(topic, event))
-            else:
-                source = LineSource(self.source_url, max_line=self.limits.max_bytes)
+                        alert_topic = self.config.kafka.alert_topic
+                        sinks.append(lambda event: self.kafka_sink.send_event(alert_topic, event))
             emitted: list[dict] = []
-            engine = Engine.from_config(self.config, sinks=[*sinks, emitted.append])
-            self._restore(engine)
+            self.engine = engine = Engine.from_config(self.config, sinks=[*sinks, emitted.append])
+            if kafka:
+                # Closed before the sinks: its final revoke snapshots, commits and may still emit.
+                source = self.source = KafkaInput(settings, on_revoke=self._revoked, on_lost=self._lost,
+                                                  on_assign=self._assigned)
+                stack.callback(source.close)
+            else:
+                source = self.source = LineSource(self.source_url, max_line=self.limits.max_bytes)
+            self._snapshot_at = time.monotonic()
             self.endpoints = Endpoints(self.listen, self.exporter.exposition, lambda: self.ready).start()
             stack.callback(self.endpoints.stop)
             self.ready = not kafka
             poll = self.config.http.poll_seconds
             while not self.stopping.is_set():
                 lines = source.poll(poll)
-                if lines:
-                    started = time.perf_counter()
-                    for number, line, partition in lines:
-                        self._consume(engine, number, line, dead, partition)
-                    engine.flush()
-                    if self.assembler is not None:
-                        self._sync_sample_counts()
-                    self.exporter.observe_events(emitted)
-                    emitted.clear()
-                    self.exporter.refresh(engine, sorted(engine.touched))
-                    engine.touched.clear()
-                    self.exporter.batch_seconds.observe(time.perf_counter() - started)
-                if self.state is not None and time.monotonic() - self._snapshot_at >= self.config.state.snapshot_seconds:
-                    self._snapshot(engine, source)
-                if kafka and (self.state is None or not engine.touched_since_snapshot):
+                with self._lock:   # rebalance callbacks run on the Kafka client's thread
+                    if lines:
+                        self._process(lines, emitted)
+                    if self.state is not None and \
+                            time.monotonic() - self._snapshot_at >= self.config.state.snapshot_seconds:
+                        self._snapshot()
+                    durable = self.state is None or not engine.touched_since_snapshot
+                if kafka and durable:
                     # Offsets are committed once what they cover is durable: the events are out
                     # and, with a state directory, every entity's snapshot includes them.
+                    # Outside the lock: a commit needs the client thread, which may be waiting on it.
                     source.commit()
                     self.ready = source.ready
                     for (lag_topic, partition), behind in source.lag().items():
@@ -241,53 +268,107 @@ class Service:
                 if source.exhausted:
                     break
             self.ready = False
-            if self.assembler is not None:   # the steps still open are complete now
-                self._feed(engine, self.assembler.flush(), 0, dead)
-            engine.flush()
-            self.exporter.observe_events(emitted)
-            if self.state is not None:
-                self._snapshot(engine, source)
+            with self._lock:
+                if self.assembler is not None:   # the steps still open are complete now
+                    self._feed(self.assembler.flush(), 0)
+                engine.flush()
+                self.exporter.observe_events(emitted)
+                if self.state is not None:
+                    self._snapshot()
             if kafka:
                 source.commit()
         return 0
 
-    def _consume(self, engine: Engine, number: int, line: bytes, dead: DeadLetterWriter | None,
-                 partition: str = "") -> None:
+    def _process(self, lines: list[tuple[int, bytes, str]], emitted: list[dict]) -> None:
+        """One poll's messages: decode, feed, run every entity's batch, update the gauges."""
+        started = time.perf_counter()
+        for number, line, partition in lines:
+            self._consume(number, line, partition)
+        self.engine.flush()
+        if self.assembler is not None:
+            self._sync_sample_counts()
+        self.exporter.observe_events(emitted)
+        emitted.clear()
+        self.exporter.refresh(self.engine, sorted(self.engine.touched))
+        self.engine.touched.clear()
+        self.exporter.batch_seconds.observe(time.perf_counter() - started)
+        stamps = getattr(self.source, "timestamps_ms", None)
+        if stamps and min(stamps) >= 0:
+            self.exporter.ingest_delay.observe(max(0.0, time.time() - min(stamps) / 1000))
+
+    # -- rebalancing (called on the Kafka client's thread, inside a poll) ---------------------------
+    def _revoked(self, partitions: list[str]) -> None:
+        """Partitions move to another member: snapshot what they changed, commit, forget their entities."""
+        with self._lock:
+            if self.state is not None:
+                self._snapshot()
+            self.source.commit()
+            self._forget(partitions)
+
+    def _lost(self, partitions: list[str]) -> None:
+        """Partitions were taken away (this member was fenced): another member may already own
+        them, so their entities are forgotten without a snapshot that could overwrite its newer one."""
+        with self._lock:
+            self._forget(partitions)
+
+    def _assigned(self, partitions: list[str]) -> None:
+        """New partitions: their entities are restored from the state directory as they appear."""
+        print(f"shiftsieve: assigned {', '.join(partitions) or 'no partitions'}", file=sys.stderr)
+
+    def _forget(self, partitions: list[str]) -> None:
+        gone = set(partitions)
+        for entity in [e for e, p in self._partition_of.items() if p in gone]:
+            self.engine.drop(entity)
+            self.exporter.forget(entity)
+            self._covered.pop(entity, None)
+            del self._partition_of[entity]
+
+    def _consume(self, number: int, line: bytes, partition: str = "") -> None:
         self.exporter.consumed.inc()
         try:
-            vectors = self._vectors(line, number, dead)
+            vectors = self._vectors(line, number)
         except DecodeError as exc:
-            self._dead_letter(dead, number, line, exc.reason, str(exc))
+            self._dead_letter(number, line, exc.reason, str(exc))
             return
         self.exporter.decoded.inc()
-        self._feed(engine, vectors, number, dead, partition)
+        self._feed(vectors, number, partition)
 
-    def _feed(self, engine: Engine, vectors: list[Vector], number: int, dead: DeadLetterWriter | None,
-              partition: str = "") -> None:
+    def _feed(self, vectors: list[Vector], number: int, partition: str = "") -> None:
+        engine = self.engine
         for vector in vectors:
-            covered = self._covered.get(vector.entity, {}).get(partition)
+            entity = vector.entity
+            if entity not in engine.entities:
+                self._restore(entity)
+            covered = self._covered.get(entity, {}).get(partition)
             if covered is not None and number < covered:
                 continue   # already inside the entity's restored snapshot: exactly once in model state
             refused = engine.feed(vector)
             if refused is not None:
-                self._dead_letter(dead, number, encode_vector(vector), refused,
-                                  f"vector of {vector.entity!r} at ts {vector.ts} refused: {refused}")
+                self._dead_letter(number, encode_vector(vector), refused,
+                                  f"vector of {entity!r} at ts {vector.ts} refused: {refused}")
+            else:
+                self._partition_of[entity] = partition
 
-    def _restore(self, engine: Engine) -> None:
-        """Load every entity snapshot of the state directory into the engine."""
-        if self.state is None:
+    def _restore(self, entity: str) -> None:
+        """Adopt ``entity``'s snapshot from the state directory, if it has one (an entity seen for
+        the first time, after a restart or after its partition moved here)."""
+        engine = self.engine
+        if self.state is None or len(engine.entities) >= engine.max_entities:
             return
-        restored, errors = self.state.load_all(engine.rules, engine.detector_config)
-        for error in errors:   # a corrupt snapshot costs its entity's state, never the service
-            print(f"shiftsieve: warning: {error}; that entity warms up again", file=sys.stderr)
-        for entity, (stream, offsets) in restored.items():
+        try:
+            restored = self.state.load(entity, engine.rules, engine.detector_config)
+        except SnapshotError as exc:   # a corrupt snapshot costs its entity's state, never the service
+            print(f"shiftsieve: warning: {exc}; that entity warms up again", file=sys.stderr)
+            return
+        if restored is not None:
+            stream, offsets = restored
             engine.adopt(stream)
             self._covered[entity] = offsets
-        self._snapshot_at = time.monotonic()
 
-    def _snapshot(self, engine: Engine, source) -> None:
+    def _snapshot(self) -> None:
         """Write the snapshots of the entities that changed, covering everything consumed so far."""
-        positions = source.positions() if hasattr(source, "positions") else {}
+        positions = self.source.positions() if hasattr(self.source, "positions") else {}
+        engine = self.engine
         for entity in sorted(engine.touched_since_snapshot):
             self.state.save(engine.entities[entity], positions)
             self._covered[entity] = positions
@@ -295,7 +376,7 @@ class Service:
         self._snapshot_at = time.monotonic()
         self.exporter.snapshot_age.set(0.0)
 
-    def _vectors(self, raw: bytes, number: int, dead: DeadLetterWriter | None) -> list[Vector]:
+    def _vectors(self, raw: bytes, number: int) -> list[Vector]:
         """The complete vectors one message yields in the configured encoding (DecodeError if none)."""
         if self.assembler is None:
             return [decode_vector(raw, self.limits)]
@@ -311,7 +392,7 @@ class Service:
             done, reason = self.assembler.add(sample)
             vectors.extend(done)
             if reason is not None:   # late, no entity label, over a cap: counted and kept
-                self._dead_letter(dead, number, _sample_message(sample), reason,
+                self._dead_letter(number, _sample_message(sample), reason,
                                   f"sample {sample.name!r} at ts {sample.ts} refused: {reason}")
         return vectors
 
@@ -320,11 +401,10 @@ class Service:
             self.exporter.samples.labels(outcome).inc(total - self._sample_counts.get(outcome, 0))
         self._sample_counts = dict(self.assembler.counts)
 
-    def _dead_letter(self, dead: DeadLetterWriter | None, number: int, raw: bytes, reason: str,
-                     detail: str) -> None:
+    def _dead_letter(self, number: int, raw: bytes, reason: str, detail: str) -> None:
         self.exporter.dead.labels(reason).inc()
-        if dead is not None:
-            dead.write(Rejected(line=number, reason=reason, detail=detail, raw=raw))
+        if self.dead is not None:
+            self.dead.write(Rejected(line=number, reason=reason, detail=detail, raw=raw))
         if self.kafka_sink is not None and self.config.kafka.dead_letter_topic:
             self.kafka_sink.send_dead_letter(self.config.kafka.dead_letter_topic, raw, reason,
                                              f"{self.source_url}@{number}")

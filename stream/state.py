@@ -435,21 +435,6 @@ class StateDirectory:
             return None
         return self._restore(path, data, rules, config)
 
-    def load_all(self, rules: MetricRules, config: DetectorConfig
-                 ) -> tuple[dict[str, tuple[EntityStream, dict[str, int]]], list[SnapshotError]]:
-        """Every snapshot: ``{entity: (stream, offsets)}`` and the errors of the files that failed
-        (one bad file costs its entity's state, not the others')."""
-        restored: dict[str, tuple[EntityStream, dict[str, int]]] = {}
-        errors: list[SnapshotError] = []
-        for path, _ in self._files():
-            try:
-                stream, offsets = self._restore(path, self._read(path), rules, config)
-            except SnapshotError as exc:
-                errors.append(exc)
-            else:
-                restored[stream.entity] = (stream, offsets)
-        return restored, errors
-
     def entities(self) -> list[str]:
         """The entities with a snapshot, sorted; SnapshotError for a hash-named file that is unreadable."""
         return sorted(self._entity_in(path) if entity is None else entity for path, entity in self._files())
