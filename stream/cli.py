@@ -46,7 +46,8 @@ def _parser() -> argparse.ArgumentParser:
 
     run = sub.add_parser("run", help="run the detector as a service on a stream (stdin by default)")
     run.add_argument("--config", metavar="FILE", help="TOML configuration")
-    run.add_argument("--source", metavar="URL", help="a file path, or - for stdin (default: source.url)")
+    run.add_argument("--source", metavar="URL", help="kafka://HOST:PORT/TOPIC?group=NAME, a file path, or - for "
+                     "stdin (default: source.url)")
     run.add_argument("--events", metavar="FILE", help="append alert events as JSON lines")
     run.add_argument("--listen", metavar="HOST:PORT", help="address of /metrics, /healthz, /readyz "
                                                            "(default: http.listen, 127.0.0.1:9471)")

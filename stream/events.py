@@ -73,14 +73,17 @@ def encode_event(event: dict) -> bytes:
 
 
 class EventFileWriter:
-    """Append alert events to a JSON-lines file; a context manager."""
+    """Write alert events to a JSON-lines file, each flushed at once so the file can be followed
+    (``tail -f``) and a crash loses none; a context manager.  ``append`` keeps what a previous
+    run wrote (the service), otherwise the file is replaced (a replay)."""
 
-    def __init__(self, path: str) -> None:
+    def __init__(self, path: str, append: bool = False) -> None:
         self.path = path
-        self._file = open(path, "wb")
+        self._file = open(path, "ab" if append else "wb")
 
     def __call__(self, event: dict) -> None:
         self._file.write(encode_event(event))
+        self._file.flush()
 
     def close(self) -> None:
         self._file.close()

@@ -220,7 +220,7 @@ class Service:
         with ExitStack() as stack:
             sinks = []
             if self.events_path:
-                sinks.append(stack.enter_context(EventFileWriter(self.events_path)))
+                sinks.append(stack.enter_context(EventFileWriter(self.events_path, append=True)))
             self.dead = stack.enter_context(DeadLetterWriter(self.dead_letter_path, source=self.source_url)) \
                 if self.dead_letter_path else None
             kafka = self.source_url.startswith("kafka://")

@@ -81,6 +81,8 @@ def test_service_detects_exports_and_stops_cleanly_on_sigterm(service):
     assert 'shiftsieve_messages_dead_lettered_total{reason="bad_json"} 1.0' in text
     assert "shiftsieve_entity_baseline_rank{" in text and "shiftsieve_batch_duration_seconds_bucket" in text
     assert get(base + "/readyz")[0] == 200
+    # The events file is written as events happen (someone may be following it), not at exit.
+    assert json.loads(wait_for(lambda: events.read_text().splitlines()[:1])[0])["state"] == "firing"
     assert get(base + "/nothing")[0] == 404
     request = urllib.request.Request(base + "/metrics", data=b"x", method="POST")
     with pytest.raises(urllib.error.HTTPError) as refused:
@@ -185,11 +187,12 @@ def test_restart_restores_models_from_the_state_directory(tmp_path):
     env = {"SHIFTSIEVE_STATE_DIRECTORY": f'"{tmp_path / "state"}"'}
     (tmp_path / "a").mkdir()
     (tmp_path / "b").mkdir()
+    (tmp_path / "c").mkdir()
     first = _run_service(tmp_path / "a", b"\n".join(lines[:cut]) + b"\n", env)
     assert first == []
     assert len(list((tmp_path / "state").iterdir())) == 4      # one snapshot per entity
     second = _run_service(tmp_path / "b", b"\n".join(lines[cut:]) + b"\n", env)
     onsets = [(e["entity"], e["metrics"][0]["name"]) for e in second if e.get("onset")]
     assert onsets == [("booking-api-2", "db_pool_wait_p99_ms")]
-    alone = _run_service(tmp_path / "b", b"\n".join(lines[cut:]) + b"\n", {})   # control: no state
+    alone = _run_service(tmp_path / "c", b"\n".join(lines[cut:]) + b"\n", {})   # control: no state
     assert ("booking-api-2", "db_pool_wait_p99_ms") not in [(e["entity"], e["metrics"][0]["name"]) for e in alone]
