@@ -237,6 +237,17 @@ class EntityDetector:
     #: learned (clipping them harder would bend their direction).
     WARMUP_CLIP = 50.0
 
+    #: Normalised values are clipped here before scoring: a value 1e300 away would overflow the
+    #: squares of the solver; a billion robust sigmas is still an unmistakable shift.
+    Z_LIMIT = 1e9
+
+    def is_finite(self) -> bool:
+        """Whether every learned array is finite (a False here means the entity must warm up again)."""
+        norm = self.normaliser
+        return all(np.isfinite(a).all() for a in (self.baseline.U, self.baseline.singular_values, norm.loc,
+                                                   norm.scale, self.residual_scale, self.warm_start,
+                                                   self.tracker.peak_shift))
+
     @staticmethod
     def _warmup_residual_scale(Z: np.ndarray, tracker: SubspaceTracker) -> np.ndarray:
         """Robust per-metric scale of in-sample residuals, corrected for the r fitted directions."""
@@ -257,6 +268,7 @@ class EntityDetector:
         norm, U, phi = self.normaliser, self.baseline.U, self.phi
         B, n = X.shape
         Z = norm.transform(X)
+        np.clip(Z, -self.Z_LIMIT, self.Z_LIMIT, out=Z)   # NaN (missing) stays NaN
         present = np.isfinite(Z)
         modelled = self.admitted                       # metrics the baseline knows
         settled = norm.count >= cfg.min_samples        # their units are fixed (see _fold_in)

@@ -138,6 +138,13 @@ class EntityStream:
         self._last_seen = np.concatenate([self._last_seen, np.full(len(new), self.detector.samples)])
         self._refresh_groups()
 
+    def rewarm(self) -> None:
+        """Start the detector over with the same metrics: it collects a new warm-up."""
+        self.detector = EntityDetector(len(self.names), self.rules.log_scale(self.names), self.detector.config)
+        self._refresh_groups()
+        self._last_seen[:] = 0
+        self.last_residual_norm = None
+
     @property
     def column_names(self) -> list[str]:
         """Names of the detector's decision columns: the metrics, then ``group:<label>`` per group."""

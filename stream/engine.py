@@ -14,7 +14,7 @@ from typing import Callable, Iterable
 
 import numpy as np
 
-from shiftsieve.models.detector import BatchResult, DetectorConfig
+from shiftsieve.models.detector import DetectorConfig
 
 from .assemble import EntityStream, MetricRules
 from .config import Config
@@ -35,6 +35,7 @@ class EngineCounts:
     solver_iterations: int = 0
     solver_unconverged: int = 0
     events: int = 0
+    rewarmed: int = 0
 
 
 class Engine:
@@ -53,6 +54,7 @@ class Engine:
         self.incidents: set[str] = set()
         self.touched: set[str] = set()   # entities that processed vectors since the caller last cleared it
         self.touched_since_snapshot: set[str] = set()
+        self.rewarmed: list[tuple[str, str]] = []   # (entity, why) since the caller last cleared it
 
     @classmethod
     def from_config(cls, config: Config, **kwargs) -> "Engine":
@@ -107,16 +109,23 @@ class Engine:
             if pending:
                 self._run(self.entities[entity])
 
-    def _run(self, stream: EntityStream) -> BatchResult:
+    def _run(self, stream: EntityStream) -> None:
         vectors = self._pending[stream.entity]
         self._pending[stream.entity] = []
         X, ts = stream.assemble(vectors)
-        result = stream.detector.process(X, ts)
-        stream.observe(X)
-        stream.last_residual_norm = float(result.residual_norm[-1])
         self.touched.add(stream.entity)
         self.touched_since_snapshot.add(stream.entity)
         self.counts.processed += len(vectors)
+        try:
+            result = stream.detector.process(X, ts)
+        except np.linalg.LinAlgError as exc:   # e.g. an SVD that did not converge on degenerate data
+            self._rewarm(stream, f"linear algebra failed ({exc})")
+            return
+        if not (stream.detector.is_finite() and np.isfinite(result.shift_sigma).all()):
+            self._rewarm(stream, "non-finite model values")   # the batch's transitions are not trusted
+            return
+        stream.observe(X)
+        stream.last_residual_norm = float(result.residual_norm[-1])
         self.counts.solver_iterations += int(result.n_iter.sum())
         self.counts.solver_unconverged += int(np.count_nonzero(~result.converged))
         for event in events_from_transitions(stream, result.transitions, ts):
@@ -124,4 +133,9 @@ class Engine:
             self.incidents.add(event["incident"])
             for sink in self.sinks:
                 sink(event)
-        return result
+
+    def _rewarm(self, stream: EntityStream, why: str) -> None:
+        """A model that went bad is never scored with: the entity warms up again, and says so."""
+        stream.rewarm()
+        self.counts.rewarmed += 1
+        self.rewarmed.append((stream.entity, why))

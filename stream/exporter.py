@@ -66,6 +66,10 @@ class Exporter:
                                     buckets=(0, 1, 2, 4, 8, 16, 32, 64, 128, 256))
         self.lag = Gauge("shiftsieve_consumer_lag_messages", "Messages behind the end of the partition",
                          ["topic", "partition"], registry=r)
+        self.rewarmed = Counter("shiftsieve_entity_rewarms_total", "Entities whose model went bad (non-finite "
+                                "values, a failed factorisation) and that warm up again", registry=r)
+        self.snapshot_errors = Counter("shiftsieve_snapshot_errors_total", "Snapshots that failed their checks "
+                                       "on restore (the entity warms up again)", registry=r)
         self.snapshot_age = Gauge("shiftsieve_snapshot_age_seconds", "Seconds since the last state snapshot",
                                   registry=r)
         self._shift_keys: dict[str, set[str]] = {}   # entity -> exported metric/column names

@@ -10,7 +10,7 @@ from __future__ import annotations
 import sys
 import time
 from contextlib import ExitStack
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, TextIO
 
@@ -33,6 +33,7 @@ class ReplaySummary:
     events: int
     seconds: float
     solver_unconverged: int = 0
+    rewarmed: list[tuple[str, str]] = field(default_factory=list)   # (entity, why): models that went bad
 
     @property
     def rate(self) -> float:
@@ -46,6 +47,8 @@ class ReplaySummary:
             line += f"; {self.rejected} lines rejected ({reasons})"
         if self.solver_unconverged:   # tolerance not reached within model.max_iter: worth knowing
             line += f"; solver: {self.solver_unconverged} vectors stopped at max_iter"
+        if self.rewarmed:
+            line += "; warmed up again: " + ", ".join(f"{e} ({why})" for e, why in self.rewarmed)
         return line
 
 
@@ -120,5 +123,5 @@ def replay(path: str | Path, config: Config, *, events_path: str | None = None,
     return ReplaySummary(vectors=accepted, rejected=sum(rejected_by_reason.values()),
                          rejected_by_reason=rejected_by_reason, entities=len(engine.entities),
                          incidents=len(engine.incidents), events=engine.counts.events,
-                         solver_unconverged=engine.counts.solver_unconverged,
+                         solver_unconverged=engine.counts.solver_unconverged, rewarmed=engine.rewarmed,
                          seconds=time.perf_counter() - started)

@@ -289,6 +289,10 @@ class Service:
             self._sync_sample_counts()
         self.exporter.observe_events(emitted)
         emitted.clear()
+        for entity, why in self.engine.rewarmed:
+            print(f"shiftsieve: warning: entity {entity!r} warms up again: {why}", file=sys.stderr)
+            self.exporter.rewarmed.inc()
+        self.engine.rewarmed.clear()
         self.exporter.refresh(self.engine, sorted(self.engine.touched))
         self.engine.touched.clear()
         self.exporter.batch_seconds.observe(time.perf_counter() - started)
@@ -359,6 +363,7 @@ class Service:
             restored = self.state.load(entity, engine.rules, engine.detector_config)
         except SnapshotError as exc:   # a corrupt snapshot costs its entity's state, never the service
             print(f"shiftsieve: warning: {exc}; that entity warms up again", file=sys.stderr)
+            self.exporter.snapshot_errors.inc()
             return
         if restored is not None:
             stream, offsets = restored

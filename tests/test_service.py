@@ -235,3 +235,36 @@ def test_a_restarted_service_reaches_the_state_of_an_uninterrupted_run(tmp_path)
         assert np.max(np.abs(a.normaliser.loc - b.normaliser.loc) / a.normaliser.scale) < 0.05
         np.testing.assert_allclose(a.residual_scale, b.residual_scale, rtol=0.1)
         np.testing.assert_array_equal(a.tracker.state, b.tracker.state)
+
+
+def test_a_corrupt_snapshot_is_reported_and_its_entity_warms_up_again(tmp_path):
+    """A truncated snapshot fails its checksum on restore: the service says which file, that entity
+    starts over (so it misses the incident, as a process without state does), the other entities are
+    restored, and the entity's next snapshot is a good one."""
+    from shiftsieve.stream.config import load_config
+    from shiftsieve.stream.engine import Engine
+    from shiftsieve.stream.state import StateDirectory
+
+    lines = gzip.open(scenarios()["single_shift"]).read().splitlines()
+    cut = next(i for i, l in enumerate(lines) if json.loads(l)["ts"] >= 1780000000.0 + 30 * 800)
+    state = tmp_path / "state"
+    env = {**__import__("os").environ, "SHIFTSIEVE_STATE_DIRECTORY": f'"{state}"'}
+
+    def run(payload: bytes, events: str) -> subprocess.CompletedProcess:
+        proc = subprocess.run([sys.executable, "-m", "shiftsieve.stream.cli", "run", "--listen", "127.0.0.1:0",
+                               "--events", str(tmp_path / events)], input=payload, capture_output=True,
+                              timeout=300, env=env)
+        assert proc.returncode == 0, proc.stderr.decode()[-2000:]
+        return proc
+    run(b"\n".join(lines[:cut]) + b"\n", "first.jsonl")
+    directory = StateDirectory(state)
+    bad = directory.file_for("booking-api-2")
+    bad.write_bytes(bad.read_bytes()[:-100])
+    second = run(b"\n".join(lines[cut:]) + b"\n", "second.jsonl")
+    warning = second.stderr.decode()
+    assert str(bad) in warning and "warms up again" in warning
+    events = [json.loads(l) for l in (tmp_path / "second.jsonl").read_text().splitlines()]
+    assert "booking-api-2" not in {e["entity"] for e in events}
+    engine = Engine.from_config(load_config(None))
+    for entity in directory.entities():   # every snapshot loads, the rewritten one included
+        assert directory.load(entity, engine.rules, engine.detector_config)[0].entity == entity
