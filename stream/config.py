@@ -117,6 +117,10 @@ SCHEMA: tuple[Setting, ...] = (
             "vectors per entity in one micro-batch (replay); live batches follow the polls"),
     Setting("engine", "max_entities", int, 100_000, "an integer in 1..10000000", _range(1, 10_000_000),
             "entities one process tracks; vectors of further entities are rejected"),
+    Setting("engine", "max_resident", int, 0, "an integer in 0..10000000 (0 = no limit)", _range(0, 10_000_000),
+            "models kept in memory by `shiftsieve run`: after each poll the least recently seen entities "
+            "beyond it are evicted (snapshotted first with state.directory, and restored when they return; "
+            "without it they warm up again)"),
     Setting("engine", "max_metrics", int, 5000, "an integer in 1..100000", _range(1, 100_000),
             "metrics one entity tracks; further names are ignored and counted"),
     Setting("engine", "drop_after", int, 1440, "an integer in 1..10000000", _range(1, 10_000_000),

@@ -9,6 +9,7 @@ flushes after every poll).
 
 from __future__ import annotations
 
+import itertools
 from dataclasses import dataclass
 from typing import Callable, Iterable
 
@@ -55,6 +56,7 @@ class Engine:
         self.touched: set[str] = set()   # entities that processed vectors since the caller last cleared it
         self.touched_since_snapshot: set[str] = set()
         self.rewarmed: list[tuple[str, str]] = []   # (entity, why) since the caller last cleared it
+        self._recent: dict[str, None] = {}   # entities, least recently fed first
 
     @classmethod
     def from_config(cls, config: Config, **kwargs) -> "Engine":
@@ -80,6 +82,9 @@ class Engine:
             stream = self.entities[vector.entity] = EntityStream(vector.entity, self.rules, self.detector_config)
             self._pending[vector.entity] = []
         pending = self._pending[vector.entity]
+        if not pending:   # once per batch, not per vector: batches are how recency is counted
+            self._recent.pop(vector.entity, None)
+            self._recent[vector.entity] = None
         last = pending[-1].ts if pending else stream.last_ts
         if vector.ts <= last:   # duplicates and late samples would corrupt the baseline
             self.counts.rejected_out_of_order += 1
@@ -93,6 +98,7 @@ class Engine:
         """Take over an entity restored from a snapshot."""
         self.entities[stream.entity] = stream
         self._pending[stream.entity] = []
+        self._recent[stream.entity] = None
 
     def drop(self, entity: str) -> None:
         """Forget an entity (its partition moved to another process); pending vectors must be flushed first."""
@@ -100,8 +106,14 @@ class Engine:
             raise RuntimeError(f"entity {entity!r} still has unprocessed vectors: flush before dropping it")
         self.entities.pop(entity, None)
         self._pending.pop(entity, None)
+        self._recent.pop(entity, None)
         self.touched.discard(entity)
         self.touched_since_snapshot.discard(entity)
+
+    def least_recent(self, keep: int) -> list[str]:
+        """The entities beyond the ``keep`` most recently fed, least recent first: what to evict
+        to hold at most ``keep`` models in memory."""
+        return list(itertools.islice(self._recent, max(len(self.entities) - keep, 0)))
 
     def flush(self) -> None:
         """Run every partial batch (end of input, or after each poll in the service)."""

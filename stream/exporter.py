@@ -68,6 +68,8 @@ class Exporter:
                          ["topic", "partition"], registry=r)
         self.rewarmed = Counter("shiftsieve_entity_rewarms_total", "Entities whose model went bad (non-finite "
                                 "values, a failed factorisation) and that warm up again", registry=r)
+        self.evicted = Counter("shiftsieve_entities_evicted_total", "Entity models evicted from memory "
+                               "(engine.max_resident)", registry=r)
         self.snapshot_errors = Counter("shiftsieve_snapshot_errors_total", "Snapshots that failed their checks "
                                        "on restore (the entity warms up again)", registry=r)
         self.snapshot_age = Gauge("shiftsieve_snapshot_age_seconds", "Seconds since the last state snapshot",

@@ -253,6 +253,7 @@ class Service:
                 with self._lock:   # rebalance callbacks run on the Kafka client's thread
                     if lines:
                         self._process(lines, emitted)
+                        self._evict()
                     if self.state is not None and \
                             time.monotonic() - self._snapshot_at >= self.config.state.snapshot_seconds:
                         self._snapshot()
@@ -322,10 +323,26 @@ class Service:
     def _forget(self, partitions: list[str]) -> None:
         gone = set(partitions)
         for entity in [e for e, p in self._partition_of.items() if p in gone]:
-            self.engine.drop(entity)
-            self.exporter.forget(entity)
-            self._covered.pop(entity, None)
-            del self._partition_of[entity]
+            self._drop(entity)
+
+    def _drop(self, entity: str) -> None:
+        self.engine.drop(entity)
+        self.exporter.forget(entity)
+        self._covered.pop(entity, None)
+        self._partition_of.pop(entity, None)
+
+    def _evict(self) -> None:
+        """Hold at most engine.max_resident models: the least recently seen beyond it are
+        snapshotted (with a state directory; restored when they return) and dropped."""
+        limit = self.config.engine.max_resident
+        if not limit or len(self.engine.entities) <= limit:
+            return
+        positions = self.source.positions() if hasattr(self.source, "positions") else {}
+        for entity in self.engine.least_recent(limit):
+            if self.state is not None and entity in self.engine.touched_since_snapshot:
+                self.state.save(self.engine.entities[entity], positions)
+            self._drop(entity)
+            self.exporter.evicted.inc()
 
     def _consume(self, number: int, line: bytes, partition: str = "") -> None:
         self.exporter.consumed.inc()
