@@ -11,6 +11,7 @@ names absent for ``drop_after`` samples are dropped once they are quiet.
 from __future__ import annotations
 
 import fnmatch
+import itertools
 import re
 from dataclasses import dataclass
 
@@ -92,20 +93,30 @@ class EntityStream:
         self.labels: dict[str, str] = {}
 
     def assemble(self, vectors: list[Vector]) -> tuple[np.ndarray, np.ndarray]:
-        """Dense ``X`` (B, n) and ``ts`` (B,) for a batch of this entity's vectors, in order."""
-        self._admit_new_names(vectors)
+        """Dense ``X`` (B, n) and ``ts`` (B,) for a batch of this entity's vectors, in order.
+
+        Rows are converted per key layout (producers use one or a few), each layout's values in
+        one ``np.fromiter`` call: per-row conversion was the largest cost of the service's batch.
+        """
+        keys = [tuple(v.metrics) for v in vectors]
+        self._admit_new_names(vectors, keys)
         X = np.full((len(vectors), len(self.names)), np.nan)
-        for row, vec in enumerate(vectors):
-            keys = tuple(vec.metrics)
-            pos = self._positions.get(keys)
+        layouts: dict[tuple[str, ...], list[int]] = {}
+        for row, k in enumerate(keys):
+            layouts.setdefault(k, []).append(row)
+        for k, rows in layouts.items():
+            pos = self._positions.get(k)
             if pos is None:
-                pos = self._positions_for(keys)
-            values = np.array(list(vec.metrics.values()), dtype=float)  # None -> NaN
+                pos = self._positions_for(k)
+            try:
+                block = np.fromiter(itertools.chain.from_iterable(vectors[r].metrics.values() for r in rows),
+                                    dtype=float, count=len(rows) * len(k)).reshape(len(rows), len(k))
+            except TypeError:   # missing values (None): the slower conversion maps them to NaN
+                block = np.array([list(vectors[r].metrics.values()) for r in rows], dtype=float)
             known = pos >= 0
-            if known.all():
-                X[row, pos] = values
-            else:   # names beyond max_metrics
-                X[row, pos[known]] = values[known]
+            if not known.all():   # names beyond max_metrics
+                pos, block = pos[known], block[:, known]
+            X[np.ix_(rows, pos)] = block
         ts = np.array([v.ts for v in vectors], dtype=float)
         self.last_ts = max(self.last_ts, float(ts.max()))
         if vectors[-1].labels:
@@ -118,11 +129,11 @@ class EntityStream:
             self._positions[keys] = pos
         return pos
 
-    def _admit_new_names(self, vectors: list[Vector]) -> None:
+    def _admit_new_names(self, vectors: list[Vector], keys: list[tuple[str, ...]]) -> None:
         fresh: dict[str, None] = {}
-        for vec in vectors:
-            if len(vec.metrics) != len(self.index) or tuple(vec.metrics) not in self._positions:
-                fresh.update((k, None) for k in vec.metrics if k not in self.index)
+        for vec, k in zip(vectors, keys):
+            if len(k) != len(self.index) or k not in self._positions:
+                fresh.update((name, None) for name in k if name not in self.index)
         if not fresh:
             return
         room = self.rules.max_metrics - len(self.names)

@@ -117,6 +117,9 @@ SCHEMA: tuple[Setting, ...] = (
             "vectors per entity in one micro-batch (replay); live batches follow the polls"),
     Setting("engine", "max_entities", int, 100_000, "an integer in 1..10000000", _range(1, 10_000_000),
             "entities one process tracks; vectors of further entities are rejected"),
+    Setting("engine", "max_delay_seconds", float, 0.2, "a number of seconds in [0, 60]", _range(0, 60),
+            "longest a vector waits in `shiftsieve run` for more of its entity's vectors to batch with "
+            "(full batches of engine.batch_size run at once); bounds the time from message to gauge"),
     Setting("engine", "max_resident", int, 0, "an integer in 0..10000000 (0 = no limit)", _range(0, 10_000_000),
             "models kept in memory by `shiftsieve run`: after each poll the least recently seen entities "
             "beyond it are evicted (snapshotted first with state.directory, and restored when they return; "

@@ -179,7 +179,7 @@ def _parse_lenient(raw: bytes | bytearray | memoryview | str, strict_error: json
 
 def vector_from_object(obj: Any, limits: DecodeLimits = DEFAULT_LIMITS) -> Vector:
     """Validate a parsed message (a mapping, from JSON or a CSV row) into a Vector; DecodeError only."""
-    if not isinstance(obj, Mapping):
+    if type(obj) is not dict and not isinstance(obj, Mapping):   # the ABC check is slow: dicts first
         raise DecodeError("not_object", f"message must be a JSON object, not {_kind(obj)}")
     ts = _timestamp(obj.get("ts"), limits)
     entity = _entity(obj.get("entity"), limits)
@@ -267,9 +267,9 @@ def _entity(value: Any, limits: DecodeLimits) -> str:
 
 
 def _metrics(value: Any, limits: DecodeLimits) -> tuple[dict[str, float | None], tuple[tuple[str, str], ...]]:
-    if value is None or (isinstance(value, Mapping) and not value):
+    if not value and (value is None or isinstance(value, Mapping)):
         raise DecodeError("no_metrics", "'metrics' is missing or empty")
-    if not isinstance(value, Mapping):
+    if type(value) is not dict and not isinstance(value, Mapping):
         raise DecodeError("bad_metrics", f"'metrics' must be an object of name -> number, not {_kind(value)}")
     if len(value) > limits.max_metrics:
         raise DecodeError("too_many_metrics", f"'metrics' has {len(value):,} entries, over the limit of "
@@ -280,22 +280,48 @@ def _metrics(value: Any, limits: DecodeLimits) -> tuple[dict[str, float | None],
 _PLAIN_VALUES = frozenset({float, int, type(None)})
 
 
+#: Metric-name layouts already checked, with their shortest and longest name: producers send the
+#: same few layouts over and over, and checking 200 names costs more than parsing them. A memo of a
+#: pure function of the names, bounded, so sharing it between callers is safe.
+_LAYOUTS: dict[tuple, tuple[int, int]] = {}
+_MAX_LAYOUTS = 1024
+
+
+def _layout(names: tuple) -> tuple[int, int] | None:
+    """(shortest, longest) name length when every name is a UTF-8-encodable str, else None."""
+    known = _LAYOUTS.get(names)
+    if known is not None:
+        return known
+    try:
+        "".join(names).encode("utf-8")  # TypeError for a non-str name, UnicodeEncodeError for surrogates
+    except (TypeError, UnicodeEncodeError):
+        return None
+    lengths = list(map(len, names))
+    known = (min(lengths), max(lengths))
+    if len(_LAYOUTS) >= _MAX_LAYOUTS:
+        _LAYOUTS.clear()
+    _LAYOUTS[names] = known
+    return known
+
+
 def _metrics_fast(value: Mapping, limits: DecodeLimits) -> tuple[dict[str, float | None], tuple[()]] | None:
     """The common all-valid case with C-level bulk checks (~3x faster than the loop), else None.
 
     It accepts only what `_metrics_checked` would pass through unchanged, so results are identical.
     """
     kinds = set(map(type, value.values()))
-    if not kinds <= _PLAIN_VALUES or "" in value:
+    if not kinds <= _PLAIN_VALUES:
+        return None
+    layout = _layout(tuple(value))
+    if layout is None or layout[0] == 0 or layout[1] > limits.max_name_length:
         return None
     try:
-        "".join(value).encode("utf-8")  # TypeError for a non-str name, UnicodeEncodeError for surrogates
         present = value.values() if type(None) not in kinds else [x for x in value.values() if x is not None]
         # The Euclidean norm bounds every |x|; it is NaN or inf when any value is.
         bounded = math.hypot(*present) <= limits.max_abs_value
-    except (TypeError, UnicodeEncodeError, OverflowError):
+    except OverflowError:
         return None
-    if not bounded or max(map(len, value)) > limits.max_name_length:
+    if not bounded:
         return None
     out = dict(value)
     if int in kinds:

@@ -57,6 +57,7 @@ class Engine:
         self.touched_since_snapshot: set[str] = set()
         self.rewarmed: list[tuple[str, str]] = []   # (entity, why) since the caller last cleared it
         self._recent: dict[str, None] = {}   # entities, least recently fed first
+        self.queued = 0   # vectors fed and not yet run
 
     @classmethod
     def from_config(cls, config: Config, **kwargs) -> "Engine":
@@ -90,6 +91,7 @@ class Engine:
             self.counts.rejected_out_of_order += 1
             return "out_of_order"
         pending.append(vector)
+        self.queued += 1
         if len(pending) >= self.batch_size:
             self._run(stream)
         return None
@@ -116,7 +118,7 @@ class Engine:
         return list(itertools.islice(self._recent, max(len(self.entities) - keep, 0)))
 
     def flush(self) -> None:
-        """Run every partial batch (end of input, or after each poll in the service)."""
+        """Run every partial batch (end of input; in the service every engine.max_delay_seconds)."""
         for entity, pending in self._pending.items():
             if pending:
                 self._run(self.entities[entity])
@@ -124,6 +126,7 @@ class Engine:
     def _run(self, stream: EntityStream) -> None:
         vectors = self._pending[stream.entity]
         self._pending[stream.entity] = []
+        self.queued -= len(vectors)
         X, ts = stream.assemble(vectors)
         self.touched.add(stream.entity)
         self.touched_since_snapshot.add(stream.entity)

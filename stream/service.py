@@ -206,6 +206,10 @@ class Service:
         self.source = None
         self.dead: DeadLetterWriter | None = None
         self._snapshot_at = time.monotonic()
+        self._flushed_at = time.monotonic()
+        self._emitted: list[dict] = []   # events of the current flush, for the exporter's counters
+        self._busy = 0.0                 # seconds spent decoding and feeding since the last flush
+        self._oldest_ms: int | None = None   # Kafka timestamp of the oldest record not yet in the gauges
         self.stopping = threading.Event()
         self.ready = False
         self.endpoints: Endpoints | None = None
@@ -234,8 +238,7 @@ class Service:
                     if self.config.kafka.alert_topic:
                         alert_topic = self.config.kafka.alert_topic
                         sinks.append(lambda event: self.kafka_sink.send_event(alert_topic, event))
-            emitted: list[dict] = []
-            self.engine = engine = Engine.from_config(self.config, sinks=[*sinks, emitted.append])
+            self.engine = engine = Engine.from_config(self.config, sinks=[*sinks, self._emitted.append])
             if kafka:
                 # Closed before the sinks: its final revoke snapshots, commits and may still emit.
                 source = self.source = KafkaInput(settings, on_revoke=self._revoked, on_lost=self._lost,
@@ -248,20 +251,23 @@ class Service:
             stack.callback(self.endpoints.stop)
             self.ready = not kafka
             poll = self.config.http.poll_seconds
+            max_delay = self.config.engine.max_delay_seconds
             while not self.stopping.is_set():
                 lines = source.poll(poll)
                 with self._lock:   # rebalance callbacks run on the Kafka client's thread
                     if lines:
-                        self._process(lines, emitted)
-                        self._evict()
+                        self._take(lines)
+                    if time.monotonic() - self._flushed_at >= max_delay:
+                        self._flush()
                     if self.state is not None and \
                             time.monotonic() - self._snapshot_at >= self.config.state.snapshot_seconds:
                         self._snapshot()
-                    durable = self.state is None or not engine.touched_since_snapshot
+                    durable = not engine.queued and (self.state is None or not engine.touched_since_snapshot)
                 if kafka and durable:
-                    # Offsets are committed once what they cover is durable: the events are out
-                    # and, with a state directory, every entity's snapshot includes them.
-                    # Outside the lock: a commit needs the client thread, which may be waiting on it.
+                    # Offsets are committed once what they cover is durable: every vector is in its
+                    # model, the events are out and, with a state directory, every entity's snapshot
+                    # includes them. Outside the lock: a commit needs the client thread, which may
+                    # be waiting on it.
                     source.commit()
                     self.ready = source.ready
                     for (lag_topic, partition), behind in source.lag().items():
@@ -272,39 +278,55 @@ class Service:
             with self._lock:
                 if self.assembler is not None:   # the steps still open are complete now
                     self._feed(self.assembler.flush(), 0)
-                engine.flush()
-                self.exporter.observe_events(emitted)
+                self._flush()
                 if self.state is not None:
                     self._snapshot()
             if kafka:
                 source.commit()
         return 0
 
-    def _process(self, lines: list[tuple[int, bytes, str]], emitted: list[dict]) -> None:
-        """One poll's messages: decode, feed, run every entity's batch, update the gauges."""
+    def _take(self, lines: list[tuple[int, bytes, str]]) -> None:
+        """One poll's messages: decode and feed them (an entity's batch runs once it is full)."""
         started = time.perf_counter()
         for number, line, partition in lines:
             self._consume(number, line, partition)
+        stamps = getattr(self.source, "timestamps_ms", None)
+        if stamps and min(stamps) >= 0 and self._oldest_ms is None:
+            self._oldest_ms = min(stamps)
+        self._busy += time.perf_counter() - started
+
+    def _flush(self) -> None:
+        """Run every queued vector, send the events, update the gauges and hold the memory bound.
+
+        Called at most every engine.max_delay_seconds: between calls the vectors of a backlog
+        queue up into full batches, which is what makes catching up fast (see DEVELOPERS.md)."""
+        started = time.perf_counter()
         self.engine.flush()
         if self.assembler is not None:
             self._sync_sample_counts()
-        self.exporter.observe_events(emitted)
-        emitted.clear()
+        self.exporter.observe_events(self._emitted)
+        self._emitted.clear()
         for entity, why in self.engine.rewarmed:
             print(f"shiftsieve: warning: entity {entity!r} warms up again: {why}", file=sys.stderr)
             self.exporter.rewarmed.inc()
         self.engine.rewarmed.clear()
-        self.exporter.refresh(self.engine, sorted(self.engine.touched))
-        self.engine.touched.clear()
-        self.exporter.batch_seconds.observe(time.perf_counter() - started)
-        stamps = getattr(self.source, "timestamps_ms", None)
-        if stamps and min(stamps) >= 0:
-            self.exporter.ingest_delay.observe(max(0.0, time.time() - min(stamps) / 1000))
+        touched = self.engine.touched
+        if touched:
+            self.exporter.refresh(self.engine, sorted(touched))
+            touched.clear()
+            self.exporter.batch_seconds.observe(self._busy + time.perf_counter() - started)
+            self._busy = 0.0
+        if self._oldest_ms is not None:
+            self.exporter.ingest_delay.observe(max(0.0, time.time() - self._oldest_ms / 1000))
+            self._oldest_ms = None
+        self._evict()
+        self._flushed_at = time.monotonic()
 
     # -- rebalancing (called on the Kafka client's thread, inside a poll) ---------------------------
     def _revoked(self, partitions: list[str]) -> None:
         """Partitions move to another member: snapshot what they changed, commit, forget their entities."""
         with self._lock:
+            self._flush()
             if self.state is not None:
                 self._snapshot()
             self.source.commit()
@@ -314,6 +336,7 @@ class Service:
         """Partitions were taken away (this member was fenced): another member may already own
         them, so their entities are forgotten without a snapshot that could overwrite its newer one."""
         with self._lock:
+            self._flush()   # queued vectors must run before their entities go; nothing is committed
             self._forget(partitions)
 
     def _assigned(self, partitions: list[str]) -> None:
@@ -389,6 +412,8 @@ class Service:
 
     def _snapshot(self) -> None:
         """Write the snapshots of the entities that changed, covering everything consumed so far."""
+        if self.engine.queued:
+            self._flush()
         positions = self.source.positions() if hasattr(self.source, "positions") else {}
         engine = self.engine
         for entity in sorted(engine.touched_since_snapshot):

@@ -51,28 +51,30 @@ def test_evicted_models_are_spilled_and_restored(tmp_path):
                             stdin=subprocess.PIPE, stderr=subprocess.PIPE, env=env)
     sent = 0
 
-    def send(payload: bytes, count: int) -> dict[str, float]:
+    def send(payload: bytes, count: int, evicted: int) -> dict[str, float]:
+        """Send, then wait until all is consumed and the flush after it has evicted ``evicted`` in all."""
         nonlocal sent
         proc.stdin.write(payload)
         proc.stdin.flush()
         sent += count
-        deadline = time.monotonic() + 60
+        deadline, metrics = time.monotonic() + 60, {}
         while time.monotonic() < deadline:
             try:
                 metrics = scrape(port)
-                if metrics.get("shiftsieve_messages_consumed_total") == sent:
+                if metrics.get("shiftsieve_messages_consumed_total") == sent and \
+                        metrics.get("shiftsieve_entities_evicted_total", 0) >= evicted:
                     return metrics
             except OSError:
                 pass
             time.sleep(0.2)
-        raise AssertionError("the service did not consume what was sent")
+        raise AssertionError(f"the service did not consume and evict as expected: {metrics}")
     try:
         for k in range(3):   # three phases of two entities each: each phase evicts the previous one
-            metrics = send(lines(ENTITIES[2 * k: 2 * k + 2], PHASE, 0, seed=k), 2 * PHASE)
+            metrics = send(lines(ENTITIES[2 * k: 2 * k + 2], PHASE, 0, seed=k), 2 * PHASE, evicted=2 * k)
         assert metrics["shiftsieve_entities_evicted_total"] == 4
         assert not any(k.startswith("shiftsieve_entity_warming_up") and ENTITIES[0] in k for k in metrics)
         # The first two return with fewer vectors than a warm-up: restored, they are scored at once.
-        metrics = send(lines(ENTITIES[:2], RETURN, PHASE, seed=9), 2 * RETURN)
+        metrics = send(lines(ENTITIES[:2], RETURN, PHASE, seed=9), 2 * RETURN, evicted=6)
         for entity in ENTITIES[:2]:
             assert metrics[f'shiftsieve_entity_warming_up{{entity="{entity}"}}'] == 0.0
         assert metrics["shiftsieve_entities_evicted_total"] == 6
