@@ -68,6 +68,33 @@ def _api_version(v: Any) -> bool:
 SECRETS = {("kafka", "sasl_password")}
 
 
+def _kafka_topic_or_empty(v: Any) -> bool:
+    # Kafka's own topic-name rule (1-249 of A-Z a-z 0-9 . _ -, not . or ..), as kafka.py checks it
+    # when the sink sends: a bad name fails here, at `config check`, not at the first alert.
+    from .kafka import _check_topic  # noqa: PLC0415  (kafka.py imports kafka-python lazily: cheap)
+    if v == "":
+        return True
+    try:
+        _check_topic(v)
+    except ValueError:
+        return False
+    return True
+
+
+def _source_url(v: Any) -> bool:
+    # A kafka:// URL (the service's test for "this is Kafka") must parse here, so `config check`
+    # rejects it with the key named instead of `shiftsieve run` failing on it later.
+    if not v.strip():
+        return False
+    if v.startswith("kafka://"):
+        from .kafka import parse_kafka_url  # noqa: PLC0415
+        try:
+            parse_kafka_url(v)
+        except ValueError:
+            return False
+    return True
+
+
 def _listen(v: Any) -> bool:
     host, sep, port = v.rpartition(":")
     return bool(sep) and port.isdigit() and 0 <= int(port) <= 65535
@@ -118,8 +145,9 @@ SCHEMA: tuple[Setting, ...] = (
     Setting("engine", "max_entities", int, 100_000, "an integer in 1..10000000", _range(1, 10_000_000),
             "entities one process tracks; vectors of further entities are rejected"),
     Setting("engine", "max_delay_seconds", float, 0.2, "a number of seconds in [0, 60]", _range(0, 60),
-            "longest a vector waits in `shiftsieve run` for more of its entity's vectors to batch with "
-            "(full batches of engine.batch_size run at once); bounds the time from message to gauge"),
+            "while `shiftsieve run` is behind its input, the longest a vector waits for more of its "
+            "entity's vectors to batch with (full batches of engine.batch_size run at once; once caught "
+            "up, every poll runs at once)"),
     Setting("engine", "max_resident", int, 0, "an integer in 0..10000000 (0 = no limit)", _range(0, 10_000_000),
             "models kept in memory by `shiftsieve run`: after each poll the least recently seen entities "
             "beyond it are evicted (snapshotted first with state.directory, and restored when they return; "
@@ -129,7 +157,7 @@ SCHEMA: tuple[Setting, ...] = (
     Setting("engine", "drop_after", int, 1440, "an integer in 1..10000000", _range(1, 10_000_000),
             "samples a metric may be absent before it is dropped from its entity"),
     Setting("source", "url", str, "-", "kafka://HOST:PORT[,HOST:PORT]/TOPIC?group=NAME, a file path, or - (stdin)",
-            lambda v: bool(v.strip()), "where `shiftsieve run` reads vector messages"),
+            _source_url, "where `shiftsieve run` reads vector messages"),
     Setting("source", "encoding", str, "vector", "one of vector, sample, otlp_json", _one_of("vector", "sample", "otlp_json"),
             "message encoding: the vector message, one sample per message, or OpenTelemetry OTLP/JSON"),
     Setting("source", "entity_labels", list, ["service", "instance"], "a non-empty list of label names",
@@ -154,15 +182,15 @@ SCHEMA: tuple[Setting, ...] = (
     Setting("kafka", "ssl_keyfile", str, "", "a file path or empty", lambda v: True, "client key for TLS"),
     Setting("kafka", "session_timeout_ms", int, 10_000, "an integer in 1000..300000", _range(1000, 300_000),
             "consumer-group session timeout: how fast a dead member's partitions move"),
-    Setting("kafka", "alert_topic", str, "", "a topic name or empty", lambda v: True,
-            "topic for alert events (empty = none)"),
-    Setting("kafka", "dead_letter_topic", str, "", "a topic name or empty", lambda v: True,
-            "topic for rejected messages with a reason header (empty = the --dead-letter file only)"),
+    Setting("kafka", "alert_topic", str, "", "a topic name (1-249 of A-Z a-z 0-9 . _ -) or empty",
+            _kafka_topic_or_empty, "topic for alert events (empty = none)"),
+    Setting("kafka", "dead_letter_topic", str, "", "a topic name (1-249 of A-Z a-z 0-9 . _ -) or empty",
+            _kafka_topic_or_empty, "topic for rejected messages with a reason header (empty = the --dead-letter file only)"),
     Setting("state", "directory", str, "", "a directory path or empty", lambda v: True,
             "where per-entity model snapshots are kept (empty = no snapshots)"),
     Setting("state", "snapshot_seconds", float, 30.0, "a number of seconds in (0, 86400]",
             _range(0, 86400, lo_open=True), "how often snapshots are written (offsets are committed after)"),
-    Setting("http", "listen", str, "127.0.0.1:9471", "HOST:PORT", _listen,
+    Setting("http", "listen", str, "127.0.0.1:9471", "HOST:PORT with a port in 0..65535", _listen,
             "address of /metrics, /healthz and /readyz (loopback by default: expose it on purpose)"),
     Setting("http", "max_series", int, 10_000, "an integer in 10..10000000", _range(10, 10_000_000),
             "cap on exported per-entity and per-shift series; the rest are counted as withheld"),
@@ -214,6 +242,14 @@ class _Section:
         self.__dict__.update(values)
 
 
+def _shown(setting: Setting, value: Any) -> str:
+    """The offending value as an error message shows it: secrets masked, long values cut (one short line)."""
+    if (setting.section, setting.key) in SECRETS:
+        return "***"  # a mistyped secret is still a secret: never echo it into logs or terminals
+    text = repr(value)
+    return text if len(text) <= 80 else text[:77] + "..."
+
+
 def _coerce(setting: Setting, value: Any, origin: str) -> Any:
     name = f"{setting.section}.{setting.key}"
     kind = setting.kind
@@ -226,23 +262,39 @@ def _coerce(setting: Setting, value: Any, origin: str) -> Any:
         dict: isinstance(value, dict),
     }[kind]
     if not ok_type:
-        raise ConfigError(f"{name} ({origin}): expected {setting.allowed}, got {value!r}")
-    if kind is float:
-        value = float(value)
-    if not setting.check(value):
-        raise ConfigError(f"{name} ({origin}): expected {setting.allowed}, got {value!r}")
+        raise ConfigError(f"{name} ({origin}): expected {setting.allowed}, got {_shown(setting, value)}")
+    try:
+        if kind is float:
+            value = float(value)
+        ok = setting.check(value)
+    except (OverflowError, TypeError, ValueError):
+        # e.g. an integer too large for a float (TOML integers are unbounded in tomllib): out of range,
+        # not a traceback
+        ok = False
+    if not ok:
+        raise ConfigError(f"{name} ({origin}): expected {setting.allowed}, got {_shown(setting, value)}")
     return value
 
 
 def _parse_env(setting: Setting, text: str) -> Any:
-    """Environment values are TOML values (``0.01``, ``["a_*"]``, ``{x = ["y"]}``); bare words are strings."""
+    """Environment values are TOML values (``0.01``, ``["a_*"]``, ``{x = ["y"]}``); bare words are strings.
+
+    For string settings anything that is not a TOML string literal is taken as it stands, so a
+    user name, path or topic such as ``12345`` or ``true`` stays a string; secrets are always
+    taken verbatim (a password is whatever the secret store injected, quotes included).
+    """
+    if (setting.section, setting.key) in SECRETS:
+        return text
     try:
-        return tomllib.loads(f"v = {text}")["v"]
+        value = tomllib.loads(f"v = {text}")["v"]
     except tomllib.TOMLDecodeError:
         if setting.kind is str:
             return text
         raise ConfigError(f"{setting.section}.{setting.key} ({setting.env}): expected {setting.allowed}, "
-                          f"got {text!r}") from None
+                          f"got {_shown(setting, text)}") from None
+    if setting.kind is str and not isinstance(value, str):
+        return text
+    return value
 
 
 def load_config(path: str | os.PathLike | None = None, environ: Mapping[str, str] | None = None) -> Config:
@@ -255,6 +307,9 @@ def load_config(path: str | os.PathLike | None = None, environ: Mapping[str, str
         for section, table in file_values.items():
             if not isinstance(table, dict):
                 raise ConfigError(f"{path}: top-level key {section!r} must be a [section] table")
+            if not any(s == section for s, _ in _BY_NAME):   # also an empty [typo] table
+                raise ConfigError(f"{path}: unknown section [{section}] "
+                                  f"(known sections: {', '.join(sorted({s for s, _ in _BY_NAME}))})")
             for key, value in table.items():
                 setting = _BY_NAME.get((section, key))
                 if setting is None:
@@ -275,7 +330,53 @@ def load_config(path: str | os.PathLike | None = None, environ: Mapping[str, str
     if values[("decision", "confirm_k")] > values[("decision", "confirm_m")]:
         raise ConfigError(f"decision.confirm_k: expected at most decision.confirm_m "
                           f"({values[('decision', 'confirm_m')]}), got {values[('decision', 'confirm_k')]}")
+    _check_kafka(values, sources)
     return Config(values, sources)
+
+
+def _check_kafka(values: dict[tuple[str, str], Any], sources: dict[tuple[str, str], str]) -> None:
+    """The [kafka] files and cross-field rules, checked here so `config check` reports them.
+
+    The rules are the ones `KafkaSettings` enforces (stream/kafka.py) when `shiftsieve run` builds
+    its clients; there they surface as a ValueError only when the service starts. The password
+    file is read here: a missing or unreadable one is a one-line error naming the key, and its
+    content becomes the effective ``kafka.sasl_password`` (masked by :func:`render`).
+    """
+    def where(key: str) -> str:
+        return f"kafka.{key} ({sources[('kafka', key)]})"
+
+    for key in ("sasl_password_file", "ssl_cafile", "ssl_certfile", "ssl_keyfile"):
+        name = values[("kafka", key)]
+        if not name:
+            continue
+        try:
+            with open(name, "rb") as f:   # the TLS files only need to be readable; the password is read
+                content = f.read() if key == "sasl_password_file" else b""
+        except OSError as exc:   # the message names the path, never file content
+            raise ConfigError(f"{where(key)}: cannot read {name}: {exc.strerror or type(exc).__name__}") from None
+        if key == "sasl_password_file":
+            try:
+                password = content.decode("utf-8").strip()   # as stream.service.kafka_settings reads it
+            except UnicodeDecodeError:
+                raise ConfigError(f"{where(key)}: {name} is not UTF-8 text") from None
+            if not password:
+                raise ConfigError(f"{where(key)}: {name} is empty: expected the SASL password")
+            values[("kafka", "sasl_password")] = password
+            sources[("kafka", "sasl_password")] = f"kafka.sasl_password_file ({sources[('kafka', key)]})"
+    protocol, mechanism = values[("kafka", "security_protocol")], values[("kafka", "sasl_mechanism")]
+    if protocol.startswith("SASL_"):
+        if not mechanism:
+            raise ConfigError(f"{where('sasl_mechanism')}: expected PLAIN, SCRAM-SHA-256 or SCRAM-SHA-512 "
+                              f"with kafka.security_protocol {protocol}, got ''")
+        if not values[("kafka", "sasl_username")]:
+            raise ConfigError(f"{where('sasl_username')}: expected a user name with kafka.security_protocol "
+                              f"{protocol}, got ''")
+        if not values[("kafka", "sasl_password")]:
+            raise ConfigError(f"kafka.sasl_password: expected a password with kafka.security_protocol {protocol} "
+                              f"(kafka.sasl_password, kafka.sasl_password_file or SHIFTSIEVE_KAFKA_SASL_PASSWORD)")
+    elif mechanism:
+        raise ConfigError(f"{where('sasl_mechanism')}: expected empty with kafka.security_protocol {protocol} "
+                          f"(SASL needs SASL_PLAINTEXT or SASL_SSL), got {mechanism!r}")
 
 
 def _read_toml(path: Path) -> dict[str, Any]:

@@ -1,14 +1,18 @@
 """Prometheus export: active shifts, per-entity health and the process's own counters.
 
 Series follow the Prometheus naming conventions (base units, ``_total`` counters,
-``_seconds``).  Label values are escaped by prometheus-client, so no entity or
-metric name can break the exposition.  Per-shift and per-entity series are
+``_seconds``).  Label values are escaped by prometheus-client (backslash, double
+quote, line feed: all the text format requires) after :func:`label_value` has
+replaced the characters the format leaves raw but that break or fake lines for
+other readers (see there), so no entity or metric name can break or inject into
+the exposition.  Per-shift and per-entity series are
 bounded by ``max_series``: beyond it new series are withheld and counted in
 ``shiftsieve_series_withheld_total`` instead of growing the scrape without limit.
 """
 
 from __future__ import annotations
 
+import re
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -21,6 +25,26 @@ if TYPE_CHECKING:
 
 #: Values of ``shiftsieve_metric_state``.
 STATE_VALUES = {PENDING: 1, FIRING: 2}
+
+# Characters replaced by U+FFFD in label values.  The Prometheus text format allows any UTF-8 in a
+# label value and escapes only backslash, double quote and line feed (prometheus-client does that),
+# so these would reach /metrics raw: C0 controls but TAB and LF (NUL truncates C strings; CR, VT, FF
+# and FS..RS end a line for readers that split on more than LF, e.g. Python's str.splitlines(), so
+# `x"} 1\rfake_metric 1` would read as an injected sample there), DEL, C1 controls (NEL U+0085 is
+# a line break too), U+2028/U+2029 (line and paragraph separators) and lone surrogates (not
+# encodable as UTF-8: generate_latest would raise and /metrics would fail as a whole; the decoders
+# never pass one, this guards other callers). TAB is harmless inside quotes; LF is escaped as \n
+# and so round-trips; everything else (RTL marks, emoji, combining characters) is kept as it is.
+# Two names that differ only in replaced characters share their series: a price only names that
+# no legitimate producer sends can pay.
+_UNSAFE_LABEL_CHARS = re.compile("[\x00-\x08\x0b-\x1f\x7f-\x9f\u2028\u2029\ud800-\udfff]")
+
+
+def label_value(text: str) -> str:
+    """``text`` as exported in a label: unsafe characters (see above) replaced by U+FFFD."""
+    if text.isprintable():   # fast path, the common case: nothing to replace (isprintable is False for all of them)
+        return text
+    return _UNSAFE_LABEL_CHARS.sub("\ufffd", text)
 
 
 class Exporter:
@@ -95,11 +119,12 @@ class Exporter:
                     self.withheld.inc()
                     continue
                 self._entity_keys.add(name)
-            self.rank.labels(name).set(det.baseline.rank)
-            self.warming.labels(name).set(1 if det.warming_up else 0)
-            self.last_sample.labels(name).set(stream.last_ts)
+            label = label_value(name)   # the bookkeeping keeps raw names; only the labels are sanitised
+            self.rank.labels(label).set(det.baseline.rank)
+            self.warming.labels(label).set(1 if det.warming_up else 0)
+            self.last_sample.labels(label).set(stream.last_ts)
             if stream.last_residual_norm is not None:
-                self.residual.labels(name).set(stream.last_residual_norm)
+                self.residual.labels(label).set(stream.last_residual_norm)
             columns = stream.column_names
             tracker = det.tracker
             busy = np.flatnonzero(tracker.state != QUIET)   # few: loop over those only
@@ -114,32 +139,33 @@ class Exporter:
                     exported.add(column)
                     self._shift_count += 1
                 live.add(column)
-                self.state.labels(name, column).set(STATE_VALUES[int(tracker.state[j])])
+                self.state.labels(label, label_value(column)).set(STATE_VALUES[int(tracker.state[j])])
                 if tracker.state[j] == FIRING:
-                    self.shift.labels(name, column).set(float(tracker.peak_shift[j]))
+                    self.shift.labels(label, label_value(column)).set(float(tracker.peak_shift[j]))
             for column in exported - live:   # resolved, adapted, quiet again, or the metric was dropped
                 exported.discard(column)
                 self._shift_count -= 1
                 for gauge in (self.state, self.shift):
                     try:
-                        gauge.remove(name, column)
+                        gauge.remove(label, label_value(column))
                     except KeyError:
                         pass
 
     def forget(self, entity: str) -> None:
         """Remove every series of ``entity`` (it moved to another process or was evicted)."""
+        label = label_value(entity)
         for column in self._shift_keys.pop(entity, set()):
             self._shift_count -= 1
             for gauge in (self.state, self.shift):
                 try:
-                    gauge.remove(entity, column)
+                    gauge.remove(label, label_value(column))
                 except KeyError:
                     pass
         if entity in self._entity_keys:
             self._entity_keys.discard(entity)
             for gauge in (self.rank, self.warming, self.last_sample, self.residual):
                 try:
-                    gauge.remove(entity)
+                    gauge.remove(label)
                 except KeyError:
                     pass
 

@@ -96,6 +96,58 @@ def _one_line(exc: BaseException) -> str:
     return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
 
 
+class _RedactSecrets(logging.Filter):
+    """Replaces registered secrets in kafka-python's log records by ``***``.
+
+    kafka-python 3.0.12 logs every request it sends at DEBUG: ``kafka.net.connection`` ("Request N:
+    SaslAuthenticateRequest(... auth_bytes=b'user\\x00user\\x00PASSWORD')") and
+    ``kafka.protocol.parser`` (the raw bytes, "Send: ..."). With SASL PLAIN that is the password in
+    clear text for anyone who turns on DEBUG logging. The filter sits on the ``kafka.*`` loggers
+    (a logger's filters see the records created on it), so it costs nothing unless DEBUG is on.
+    """
+
+    def __init__(self) -> None:
+        super().__init__("shiftsieve.redact")
+        self.forms: tuple[str, ...] = ()   # longest first; replaced whole, as records come from IO threads
+
+    def add(self, secret: str) -> None:
+        # as the text, inside a str repr, and inside a bytes/bytearray repr (escaped, e.g. non-ASCII;
+        # a repr holding both quote characters also escapes ')
+        in_bytes = repr(secret.encode("utf-8"))[2:-1]
+        forms = set(self.forms) | {secret, repr(secret)[1:-1], in_bytes, in_bytes.replace("'", "\\'")}
+        self.forms = tuple(sorted(forms - {""}, key=len, reverse=True))
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        if not self.forms:
+            return True
+        try:
+            message = record.getMessage()
+        except Exception:  # noqa: BLE001  (a malformed record: leave it to logging's own handling)
+            return True
+        redacted = message
+        for form in self.forms:
+            redacted = redacted.replace(form, "***")
+        if redacted != message:
+            record.msg, record.args = redacted, None
+        return True
+
+
+_REDACT = _RedactSecrets()
+#: loggers known to log request payloads (kafka-python 3.0.12: net.connection, protocol.parser; 2.x: conn);
+#: every other kafka.* logger that exists when a client is built gets the filter too
+_PAYLOAD_LOGGERS = ("kafka", "kafka.net.connection", "kafka.protocol.parser", "kafka.conn")
+
+
+def _redact_in_kafka_logs(secret: str) -> None:
+    """Keep ``secret`` out of kafka-python's log records (see `_RedactSecrets`)."""
+    _REDACT.add(secret)
+    names = set(_PAYLOAD_LOGGERS) | {n for n in logging.root.manager.loggerDict if n.startswith("kafka.")}
+    for name in names:
+        logger = logging.getLogger(name)
+        if _REDACT not in logger.filters:
+            logger.addFilter(_REDACT)
+
+
 @dataclass(frozen=True)
 class KafkaSettings:
     """What the Kafka clients need. ``repr()`` masks the SASL password."""
@@ -181,6 +233,9 @@ class KafkaSettings:
             kw["sasl_mechanism"] = self.sasl_mechanism
             kw["sasl_plain_username"] = self.sasl_username
             kw["sasl_plain_password"] = self.sasl_password
+            # these kwargs go to a kafka-python client, which logs SASL PLAIN requests (password
+            # included) at DEBUG: redact it there (called after `import kafka`, so its loggers exist)
+            _redact_in_kafka_logs(self.sasl_password)
         for name in ("ssl_cafile", "ssl_certfile", "ssl_keyfile"):
             if getattr(self, name) is not None:
                 kw[name] = getattr(self, name)
@@ -197,6 +252,9 @@ class KafkaSettings:
             heartbeat_interval_ms=max(100, int(self.session_timeout_ms) // 3),
             max_poll_records=int(self.max_poll_records),
             max_partition_fetch_bytes=max(int(self.max_message_bytes), 1 << 20),
+            # kafka-python's default 500 ms lets an idle partition's fetch sit that long before new
+            # records come back; measured on Tansu at 2,000 msg/s: p50 145 ms at 500, 9 ms at 10.
+            fetch_max_wait_ms=100,
         )
         return kw
 

@@ -181,41 +181,56 @@ def _lines(stream: IO[bytes], first: bytes, limits: DecodeLimits, raw_cap: int) 
     number = 0
     pending = b""                  # start of the current line (only its head while skipping)
     skipped = 0                    # > 0: length so far of an over-long line being skipped
+    blank = True                   # while skipping: no byte of the line so far is non-whitespace
     chunk = first
     while chunk:
         start = 0
         while (end := chunk.find(b"\n", start)) >= 0:
             number += 1
             if skipped:
-                item = _too_large(number, skipped + end - start, pending, raw_cap, limits)
+                # An over-long line of whitespace only is blank like any other (skipped silently,
+                # as LineSource in service.py does), so "non-blank lines == vectors + rejected" holds.
+                item = None if blank and _blank(chunk[start:end]) else \
+                    _too_large(number, skipped + end - start, pending, raw_cap, limits)
             else:
                 item = _line(number, pending + chunk[start:end] if pending else chunk[start:end], limits, raw_cap)
             if item is not None:
                 yield item
-            skipped, pending = 0, b""
+            skipped, pending, blank = 0, b"", True
             start = end + 1
         if skipped:
             skipped += len(chunk) - start
+            blank = blank and _blank(chunk[start:])
         else:
             pending += chunk[start:]
             if len(pending) > limit:
-                skipped, pending = len(pending), pending[:raw_cap]
+                skipped, blank, pending = len(pending), _blank(pending), pending[:raw_cap]
         try:
             chunk = stream.read1(_CHUNK)
         except (OSError, EOFError, zlib.error) as exc:
             yield _broken(number + 1, exc, pending, raw_cap)
             return
-    item = _too_large(number + 1, skipped, pending, raw_cap, limits) if skipped else _line(number + 1, pending, limits, raw_cap)
+    if skipped:
+        item = None if blank else _too_large(number + 1, skipped, pending, raw_cap, limits)
+    else:
+        item = _line(number + 1, pending, limits, raw_cap)
     if item is not None:
         yield item
 
 
+def _blank(data: bytes) -> bool:
+    """Empty or ASCII whitespace only (bytes.isspace, the same test as for a short line)."""
+    return not data or data.isspace()
+
+
 def _line(number: int, line: bytes, limits: DecodeLimits, raw_cap: int) -> tuple[int, bytes] | Rejected | None:
-    """A complete line: None if blank, Rejected if over the size limit."""
+    """A complete line: None if blank (whatever its length), Rejected if over the size limit."""
     line = line.removesuffix(b"\r")
+    if _blank(line):  # before the size check: a long run of whitespace is still a blank line
+        return None
     if len(line) > limits.max_bytes:
         return _too_large(number, len(line), line, raw_cap, limits)
-    return (number, line) if line and not line.isspace() else None
+    return number, line
 
 
 def _too_large(number: int, size: int, head: bytes, raw_cap: int, limits: DecodeLimits) -> Rejected:

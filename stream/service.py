@@ -78,6 +78,11 @@ class LineSource:
             os.close(fd)
             self._queue.put(None)
 
+    @property
+    def caught_up(self) -> bool:
+        """Nothing more is waiting to be read right now."""
+        return self._queue.empty()
+
     def poll(self, timeout: float) -> list[tuple[int, bytes, str]]:
         """Up to ``max_batch`` (line number, line, "") triples; waits at most ``timeout`` s for the first."""
         out: list[tuple[int, bytes, str]] = []
@@ -159,6 +164,11 @@ class KafkaInput:
             self._next[(r.topic, r.partition)] = r.offset + 1
         self.timestamps_ms = [r.timestamp_ms for r in records]
         return [(r.offset, r.value, f"{r.topic}/{r.partition}") for r in records]
+
+    @property
+    def caught_up(self) -> bool:
+        """No assigned partition has records beyond what was polled (as of the last fetch)."""
+        return not any(self.source.lag().values())
 
     def positions(self) -> dict[str, int]:
         """Next offset per partition consumed so far, as snapshots record them."""
@@ -254,10 +264,12 @@ class Service:
             max_delay = self.config.engine.max_delay_seconds
             while not self.stopping.is_set():
                 lines = source.poll(poll)
+                caught_up = source.caught_up   # outside the lock: it asks the Kafka client
                 with self._lock:   # rebalance callbacks run on the Kafka client's thread
                     if lines:
                         self._take(lines)
-                    if time.monotonic() - self._flushed_at >= max_delay:
+                    # Caught up, the gauges follow at once; behind, vectors queue into full batches.
+                    if caught_up or time.monotonic() - self._flushed_at >= max_delay:
                         self._flush()
                     if self.state is not None and \
                             time.monotonic() - self._snapshot_at >= self.config.state.snapshot_seconds:

@@ -89,13 +89,19 @@ def _tail(path: Path, n: int = 600) -> str:
 
 
 class TansuBroker:
-    """One Tansu process with in-memory storage, listening on 127.0.0.1:port."""
+    """One Tansu process with in-memory storage, listening on 127.0.0.1:port.
 
-    def __init__(self, binary: Path, log_path: Path, port: int | None = None):
+    ``advertised_port`` (default: ``port``) is the port put in metadata: clients connect there
+    after bootstrapping, e.g. to a test's relay in front of the broker.
+    """
+
+    def __init__(self, binary: Path, log_path: Path, port: int | None = None,
+                 advertised_port: int | None = None):
         self.binary = binary
         self.log_path = log_path
         self.port = port or free_port()
         self.address = f"127.0.0.1:{self.port}"
+        self.advertised_port = advertised_port or self.port
         self.proc: subprocess.Popen | None = None
         self.startup_s: float | None = None
         self.found_by = ""
@@ -103,7 +109,8 @@ class TansuBroker:
     @property
     def command(self) -> list[str]:
         url = f"tcp://{self.address}"
-        return [str(self.binary), "broker", "--listener-url", url, "--advertised-listener-url", url,
+        advertised = f"tcp://127.0.0.1:{self.advertised_port}"
+        return [str(self.binary), "broker", "--listener-url", url, "--advertised-listener-url", advertised,
                 "--storage-engine", "memory://tansu/"]
 
     def start(self, timeout_s: float = START_TIMEOUT_S) -> None:
@@ -148,15 +155,16 @@ class TansuBroker:
             proc.wait(timeout=5)
 
 
-def start_tansu(scratch: Path, port: int | None = None) -> TansuBroker:
-    """Find the binary and start a broker; RuntimeError with the reason if it cannot be had."""
+def start_tansu(scratch: Path, port: int | None = None, advertised_port: int | None = None) -> TansuBroker:
+    """Find the binary and start a broker; RuntimeError with the reason if it cannot be had.
+    ``advertised_port``: see `TansuBroker`."""
     scratch.mkdir(parents=True, exist_ok=True)
     binary, how = find_tansu(scratch / "bin")
     if binary is None:
         raise RuntimeError(how)
     last: Exception | None = None
     for attempt in range(1 if port else 3):  # a free port may be taken between probing and binding
-        broker = TansuBroker(binary, scratch / f"tansu-{attempt}.log", port=port)
+        broker = TansuBroker(binary, scratch / f"tansu-{attempt}.log", port=port, advertised_port=advertised_port)
         try:
             broker.start()
             broker.found_by = how
@@ -190,15 +198,17 @@ def kafka_broker(tansu_broker) -> str:
 
 @pytest.fixture
 def tansu_factory(tmp_path):
-    """Factory for private brokers a test may stop: ``tansu_factory(port=None) -> TansuBroker``.
+    """Factory for private brokers a test may stop:
+    ``tansu_factory(port=None, advertised_port=None) -> TansuBroker``.
 
     All are stopped after the test. Pass the port of a stopped one to bring "it" back (empty).
+    ``advertised_port`` makes the broker advertise another port (a relay's) in metadata.
     """
     started: list[TansuBroker] = []
 
-    def make(port: int | None = None) -> TansuBroker:
+    def make(port: int | None = None, advertised_port: int | None = None) -> TansuBroker:
         try:
-            broker = start_tansu(tmp_path / f"tansu{len(started)}", port=port)
+            broker = start_tansu(tmp_path / f"tansu{len(started)}", port=port, advertised_port=advertised_port)
         except RuntimeError as exc:
             _unavailable(str(exc))
         started.append(broker)

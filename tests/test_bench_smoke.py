@@ -38,3 +38,17 @@ def test_bench_model_runs(capsys):
     out = capsys.readouterr().out
     for n in (50, 200, 1000):
         assert re.search(rf"^\s+{n}\s+[0-9,]+\s+[0-9,]+\s+[0-9.]+\s+[0-9]+%$", out, re.M), (n, out)
+
+
+def test_bench_service_runs(capsys, kafka_broker):
+    """The end-to-end benchmark at smoke size (it starts its own broker; the fixture only makes
+    the test skip, or fail under SHIFTSIEVE_REQUIRE_BROKER=1, where no broker can run)."""
+    spec = importlib.util.spec_from_file_location("bench_service", BENCH.with_name("bench_service.py"))
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    assert mod.main(["--vectors", "2000", "--latency-messages", "200", "--entities", "2"]) == 0
+    out = capsys.readouterr().out
+    assert re.search(r"^3\. service: [0-9,]+ vectors in", out, re.M), out
+    assert re.search(r"p50 [0-9.]+ ms, p99 [0-9.]+ ms", out), out
+    assert "peak RSS" in out, out
+    assert len(re.findall(r"^\s+(?:service >=|>= 10,000).*:\s+(?:NOT )?met \(", out, re.M)) == 2, out

@@ -127,22 +127,30 @@ def paced_producer(params: dict) -> int:
 
 # -- the service under test --------------------------------------------------------------------
 class Recorder:
-    """Wraps ``service.exporter.refresh``: one entry per poll that carried records."""
+    """Wraps the service's ``_take`` (one call per poll with records) and ``exporter.refresh`` (one
+    per flush, when the gauges include what was taken): a record's latency ends at the refresh
+    after the poll that carried it."""
 
     def __init__(self, service) -> None:
         self.service = service
+        self._take = service._take
         self._refresh = service.exporter.refresh
         self.calls: list[tuple[float, int, int]] = []   # (perf_counter after refresh, processed, records)
         self.latency = False
         self.latencies: list[float] = []   # seconds, send -> gauges updated
+        self._stamps: list[int] = []       # Kafka timestamps (ms) taken since the last refresh
+
+    def take(self, lines) -> None:
+        self._take(lines)
+        self._stamps.extend(getattr(self.service.source, "timestamps_ms", None) or [])
 
     def refresh(self, engine, entities) -> None:
         self._refresh(engine, entities)
         now = time.time()
-        stamps = getattr(self.service.source, "timestamps_ms", None) or []
-        self.calls.append((time.perf_counter(), engine.counts.processed, len(stamps)))
+        self.calls.append((time.perf_counter(), engine.counts.processed, len(self._stamps)))
         if self.latency:
-            self.latencies.extend(now - ms / 1000 for ms in stamps)
+            self.latencies.extend(now - ms / 1000 for ms in self._stamps)
+        self._stamps = []
 
 
 def _wait(predicate, timeout: float, step: float, what: str) -> None:
@@ -222,6 +230,7 @@ def run(args: argparse.Namespace, port: int) -> dict:
                       listen="127.0.0.1:0")
     rec = Recorder(service)
     service.exporter.refresh = rec.refresh
+    service._take = rec.take
     failure: list[BaseException] = []
 
     def target() -> None:
@@ -265,10 +274,11 @@ def run(args: argparse.Namespace, port: int) -> dict:
               f"{config.model.warmup}); detection mode only: "
               + (f"{res['detect_rate']:,.0f} vectors/s over {N - detect[0][1]:,} vectors"
                  if res["detect_rate"] else "n/a (no vectors after warm-up)"), flush=True)
-        print(f"   {len(calls):,} polls with records, {res['per_poll']:,.0f} records per poll (max "
+        print(f"   {len(calls):,} flushes, {res['per_poll']:,.0f} records per flush (max "
               f"{res['max_per_poll']:,}); engine.batch_size {config.engine.batch_size}; "
-              f"{1e6 * wall / N:.0f} us per vector, of which {1e6 * busy / N:.0f} us processing the polls "
-              f"(decode, engine, gauges: {res['busy']:.0%} of the time) and the rest in poll, commit and lag",
+              f"{1e6 * wall / N:.0f} us per vector, of which {1e6 * busy / N:.0f} us processing "
+              f"(decode, engine, gauges: {res['busy']:.0%} of the time) and the rest in poll, commit and lag; "
+              f"engine.max_delay_seconds {config.engine.max_delay_seconds}",
               flush=True)
         print(f"   process CPU {res['cpu_cores']:.2f} cores; solver iterations per detected vector "
               f"{res['iterations']:.2f}; alert events {counts.events}", flush=True)
@@ -300,8 +310,8 @@ def run(args: argparse.Namespace, port: int) -> dict:
         print(f"4. latency: {M:,} messages sent at {sent['rate']:,.0f}/s (target {args.rate:,.0f}/s) by another "
               f"process; send -> gauges updated over {lat.size:,} records: p50 {res['p50']:.1f} ms, "
               f"p99 {res['p99']:.1f} ms, max {res['lat_max']:.1f} ms", flush=True)
-        print(f"   {len(polls4):,} polls with records ({res['per_poll4']:.1f} records per poll, "
-              f"{1000 * busy4 / max(len(polls4), 1):.1f} ms processing per poll); "
+        print(f"   {len(polls4):,} flushes ({res['per_poll4']:.1f} records per flush, "
+              f"{1000 * busy4 / max(len(polls4), 1):.1f} ms processing per flush); "
               f"http.poll_seconds {poll_s} (the longest a poll waits; it returns as soon as records arrive): "
               f"p99 is {res['p99'] / (1000 * poll_s):.0%} of it", flush=True)
     finally:
