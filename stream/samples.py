@@ -227,14 +227,28 @@ class SampleAssembler:
         self._entity_keys = frozenset(self.entity_labels)
         self._entities: dict[str, _Entity] = {}
         self._heap: list[tuple[float, str]] = []  # (bucket start, entity) of every open bucket
+        # (bucket start, entity) -> {partition: lowest offset of a message with a sample in it}
+        self._origins: dict[tuple[float, str], dict[str, int]] = {}
 
     @property
     def open_buckets(self) -> int:
         """Buckets held in memory, waiting for the watermark."""
         return len(self._heap)
 
-    def add(self, sample: Sample) -> tuple[list[Vector], str | None]:
-        """Take one sample: the vectors it completes, and its rejection reason (None = accepted)."""
+    def held_offsets(self) -> dict[str, int]:
+        """Per partition, the lowest offset of a message with a sample still in an open bucket: a
+        snapshot or commit must not go past it, or a crash would lose the bucket's samples."""
+        floor: dict[str, int] = {}
+        for origins in self._origins.values():
+            for partition, offset in origins.items():
+                if offset < floor.get(partition, offset + 1):
+                    floor[partition] = offset
+        return floor
+
+    def add(self, sample: Sample, origin: tuple[str, int] | None = None) -> tuple[list[Vector], str | None]:
+        """Take one sample: the vectors it completes, and its rejection reason (None = accepted).
+
+        ``origin`` is the (partition, offset) of its message, for :meth:`held_offsets`."""
         if not all(sample.labels.get(key) for key in self.entity_labels):
             return [], self._reject("no_entity")
         entity = "/".join(sample.labels[key] for key in self.entity_labels)
@@ -253,7 +267,13 @@ class SampleAssembler:
         if sample.ts > self.watermark:
             self.watermark = sample.ts
             emitted = self._emit(self._closed)
-        return emitted, self._place(entity, start, name, sample)
+        reason = self._place(entity, start, name, sample)
+        if reason is None and origin is not None:
+            origins = self._origins.setdefault((start, entity), {})
+            partition, offset = origin
+            if offset < origins.get(partition, offset + 1):
+                origins[partition] = offset
+        return emitted, reason
 
     def flush(self) -> list[Vector]:
         """Emit every open bucket (end of input, shutdown); later samples for them are late."""
@@ -298,6 +318,7 @@ class SampleAssembler:
             start, entity = heapq.heappop(self._heap)
             state = self._entities[entity]
             bucket = state.buckets.pop(start)
+            self._origins.pop((start, entity), None)
             if not state.buckets:
                 del self._entities[entity]
             out.append(Vector(start, entity, {n: bucket[n][1] for n in sorted(bucket)}, dict(state.labels)))

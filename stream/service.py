@@ -171,17 +171,24 @@ class KafkaInput:
         return not any(self.source.lag().values())
 
     def positions(self) -> dict[str, int]:
-        """Next offset per partition consumed so far, as snapshots record them."""
+        """Next offset per partition consumed so far."""
         return {f"{t}/{p}": o for (t, p), o in {**self._committed, **self._next}.items()}
 
     @property
     def ready(self) -> bool:
         return bool(self.source.connected and self.source.assignment())
 
-    def commit(self) -> None:
-        if self._next and self.source.commit(self._next):
-            self._committed.update(self._next)
-            self._next = {}
+    def commit(self, floor: dict[str, int] | None = None) -> None:
+        """Commit what was consumed, but never past ``floor`` ("topic/partition" -> offset: the
+        oldest message whose data is still held outside the models)."""
+        target = {}
+        for (t, p), offset in self._next.items():
+            limit = floor.get(f"{t}/{p}") if floor else None
+            offset = offset if limit is None else min(offset, limit)
+            if self._committed.get((t, p)) != offset:
+                target[(t, p)] = offset
+        if target and self.source.commit(target):
+            self._committed.update(target)
 
     def lag(self) -> dict[tuple[str, int], int]:
         return self.source.lag()
@@ -280,7 +287,7 @@ class Service:
                     # model, the events are out and, with a state directory, every entity's snapshot
                     # includes them. Outside the lock: a commit needs the client thread, which may
                     # be waiting on it.
-                    source.commit()
+                    source.commit(self._held())
                     self.ready = source.ready
                     for (lag_topic, partition), behind in source.lag().items():
                         self.exporter.lag.labels(lag_topic, str(partition)).set(behind)
@@ -294,7 +301,7 @@ class Service:
                 if self.state is not None:
                     self._snapshot()
             if kafka:
-                source.commit()
+                source.commit(self._held())
         return 0
 
     def _take(self, lines: list[tuple[int, bytes, str]]) -> None:
@@ -341,7 +348,7 @@ class Service:
             self._flush()
             if self.state is not None:
                 self._snapshot()
-            self.source.commit()
+            self.source.commit(self._held())
             self._forget(partitions)
 
     def _lost(self, partitions: list[str]) -> None:
@@ -372,7 +379,7 @@ class Service:
         limit = self.config.engine.max_resident
         if not limit or len(self.engine.entities) <= limit:
             return
-        positions = self.source.positions() if hasattr(self.source, "positions") else {}
+        positions = self._positions()
         for entity in self.engine.least_recent(limit):
             if self.state is not None and entity in self.engine.touched_since_snapshot:
                 self.state.save(self.engine.entities[entity], positions)
@@ -382,7 +389,7 @@ class Service:
     def _consume(self, number: int, line: bytes, partition: str = "") -> None:
         self.exporter.consumed.inc()
         try:
-            vectors = self._vectors(line, number)
+            vectors = self._vectors(line, number, partition)
         except DecodeError as exc:
             self._dead_letter(number, line, exc.reason, str(exc))
             return
@@ -426,7 +433,7 @@ class Service:
         """Write the snapshots of the entities that changed, covering everything consumed so far."""
         if self.engine.queued:
             self._flush()
-        positions = self.source.positions() if hasattr(self.source, "positions") else {}
+        positions = self._positions()
         engine = self.engine
         for entity in sorted(engine.touched_since_snapshot):
             self.state.save(engine.entities[entity], positions)
@@ -435,7 +442,19 @@ class Service:
         self._snapshot_at = time.monotonic()
         self.exporter.snapshot_age.set(0.0)
 
-    def _vectors(self, raw: bytes, number: int) -> list[Vector]:
+    def _held(self) -> dict[str, int] | None:
+        """Per partition, the oldest offset whose samples wait in the assembler's open steps."""
+        return self.assembler.held_offsets() if self.assembler is not None else None
+
+    def _positions(self) -> dict[str, int]:
+        """What a snapshot covers: the next offset per partition, but not past a held sample."""
+        positions = self.source.positions() if hasattr(self.source, "positions") else {}
+        for partition, offset in (self._held() or {}).items():
+            if partition in positions:
+                positions[partition] = min(positions[partition], offset)
+        return positions
+
+    def _vectors(self, raw: bytes, number: int, partition: str = "") -> list[Vector]:
         """The complete vectors one message yields in the configured encoding (DecodeError if none)."""
         if self.assembler is None:
             return [decode_vector(raw, self.limits)]
@@ -448,7 +467,7 @@ class Service:
                 self.exporter.samples.labels("skipped").inc(skipped)
         vectors: list[Vector] = []
         for sample in samples:
-            done, reason = self.assembler.add(sample)
+            done, reason = self.assembler.add(sample, (partition, number))
             vectors.extend(done)
             if reason is not None:   # late, no entity label, over a cap: counted and kept
                 self._dead_letter(number, _sample_message(sample), reason,

@@ -355,3 +355,20 @@ def test_vector_messages_and_samples_give_the_same_vectors() -> None:
     assert a.counts["late"] == a.counts["duplicate"] == 0 and a.counts["out_of_order"] > 0
     key = lambda v: (v.ts, v.entity)  # noqa: E731
     assert sorted(got, key=key) == sorted(expected, key=key)
+
+
+def test_held_offsets_are_the_oldest_message_of_each_open_step() -> None:
+    """What a snapshot or commit may cover: never past a sample still waiting in an open step."""
+    a = SampleAssembler(ENTITY, step=60, allowed_lateness=10)
+    a.add(sample(T0 + 1, "cpu_util"), ("t/0", 10))
+    a.add(sample(T0 + 2, "lat_ms", instance="checkout-4"), ("t/1", 3))
+    a.add(sample(T0 + 3, "mem_bytes"), ("t/0", 12))
+    assert a.held_offsets() == {"t/0": 10, "t/1": 3}
+    a.add(sample(T0 + 61, "cpu_util"), ("t/0", 20))            # next step; the first one stays open
+    assert a.held_offsets() == {"t/0": 10, "t/1": 3}
+    out, _ = a.add(sample(T0 + 75, "cpu_util", instance="checkout-4"), ("t/1", 30))   # closes step T0
+    assert len(out) == 2 and a.held_offsets() == {"t/0": 20, "t/1": 30}
+    _, reason = a.add(sample(T0 + 1, "late"), ("t/0", 5))      # refused: holds nothing
+    assert reason == "late" and a.held_offsets() == {"t/0": 20, "t/1": 30}
+    a.flush()
+    assert a.held_offsets() == {}

@@ -268,3 +268,31 @@ def test_a_corrupt_snapshot_is_reported_and_its_entity_warms_up_again(tmp_path):
     engine = Engine.from_config(load_config(None))
     for entity in directory.entities():   # every snapshot loads, the rewritten one included
         assert directory.load(entity, engine.rules, engine.detector_config)[0].entity == entity
+
+
+def test_commits_never_pass_a_held_offset(monkeypatch):
+    """KafkaInput commits the next offset per partition, capped by the floor the service gives
+    (the oldest message whose samples still wait in an open step), and moves on once it rises."""
+    import shiftsieve.stream.kafka as kafka_module
+    from shiftsieve.stream.kafka import Record
+    from shiftsieve.stream.service import KafkaInput
+
+    class FakeSource:
+        def __init__(self, settings, **callbacks):
+            self.commits = []
+
+        def poll(self, timeout):
+            return [Record("t", 0, o, None, b"{}", 0) for o in range(5)] + [Record("t", 1, 7, None, b"{}", 0)]
+
+        def commit(self, offsets):
+            self.commits.append(dict(offsets))
+            return True
+    monkeypatch.setattr(kafka_module, "KafkaSource", FakeSource)
+    source = KafkaInput(settings=None)
+    source.poll(0.1)
+    source.commit({"t/0": 2})
+    assert source.source.commits == [{("t", 0): 2, ("t", 1): 8}]
+    assert source.positions() == {"t/0": 5, "t/1": 8}
+    source.commit({"t/0": 2})          # nothing new: no request
+    source.commit(None)                # the floor is gone: the rest of partition 0
+    assert source.source.commits[1:] == [{("t", 0): 5}]
