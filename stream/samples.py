@@ -249,7 +249,7 @@ class SampleAssembler:
         """Take one sample: the vectors it completes, and its rejection reason (None = accepted).
 
         ``origin`` is the (partition, offset) of its message, for :meth:`held_offsets`."""
-        if not all(sample.labels.get(key) for key in self.entity_labels):
+        if not all((sample.labels.get(key) or "").strip() for key in self.entity_labels):   # as the vector decoder
             return [], self._reject("no_entity")
         entity = "/".join(sample.labels[key] for key in self.entity_labels)
         if len(entity) > self.limits.max_entity_length:

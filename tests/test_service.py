@@ -296,3 +296,13 @@ def test_commits_never_pass_a_held_offset(monkeypatch):
     source.commit({"t/0": 2})          # nothing new: no request
     source.commit(None)                # the floor is gone: the rest of partition 0
     assert source.source.commits[1:] == [{("t", 0): 5}]
+
+
+def test_a_byte_order_mark_on_the_first_line_is_not_a_bad_message(tmp_path):
+    """Editors on some systems start a file with a UTF-8 BOM; replay ignores it, so does `run`."""
+    line = json.dumps({"ts": 1796000000.0, "entity": "pier-1", "metrics": {"m": 1.0}}).encode()
+    proc = subprocess.run([sys.executable, "-m", "shiftsieve.stream.cli", "run", "--listen", "127.0.0.1:0",
+                           "--dead-letter", str(tmp_path / "dead.jsonl")], input=b"\xef\xbb\xbf" + line + b"\n",
+                          capture_output=True, timeout=60)
+    assert proc.returncode == 0, proc.stderr.decode()[-2000:]
+    assert (tmp_path / "dead.jsonl").read_text() == ""
