@@ -90,7 +90,14 @@ def main(argv: list[str] | None = None) -> int:
                     parse_listen(args.listen)
                 except ValueError as exc:
                     raise ConfigError(f"--listen: {exc}") from None
-            return Service(config, source_url=args.source or config.source.url, events_path=args.events,
+            source = args.source or config.source.url
+            if source.startswith("kafka://"):
+                from .kafka import parse_kafka_url
+                try:
+                    parse_kafka_url(source)
+                except ValueError as exc:
+                    raise ConfigError(f"--source: {exc}") from None
+            return Service(config, source_url=source, events_path=args.events,
                            dead_letter_path=args.dead_letter, listen=args.listen).run()
         if args.command == "evaluate":
             labels = load_labels(args.labels)

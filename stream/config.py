@@ -19,6 +19,10 @@ from shiftsieve.models.decision import DecisionConfig
 from shiftsieve.models.detector import DetectorConfig
 
 ENV_PREFIX = "SHIFTSIEVE_"
+#: SHIFTSIEVE_ variables that are not configuration: the test harness's (tests/conftest.py; CI
+#: exports SHIFTSIEVE_REQUIRE_BROKER=1). Without this every load_config() from os.environ in CI
+#: failed with "unknown environment variable SHIFTSIEVE_REQUIRE_BROKER".
+NOT_CONFIG_ENV = frozenset({"SHIFTSIEVE_REQUIRE_BROKER", "SHIFTSIEVE_TANSU_BIN"})
 
 
 class ConfigError(ValueError):
@@ -185,7 +189,8 @@ SCHEMA: tuple[Setting, ...] = (
     Setting("kafka", "alert_topic", str, "", "a topic name (1-249 of A-Z a-z 0-9 . _ -) or empty",
             _kafka_topic_or_empty, "topic for alert events (empty = none)"),
     Setting("kafka", "dead_letter_topic", str, "", "a topic name (1-249 of A-Z a-z 0-9 . _ -) or empty",
-            _kafka_topic_or_empty, "topic for rejected messages with a reason header (empty = the --dead-letter file only)"),
+            _kafka_topic_or_empty,
+            "topic for rejected messages with a reason header (empty = the --dead-letter file only)"),
     Setting("state", "directory", str, "", "a directory path or empty", lambda v: True,
             "where per-entity model snapshots are kept (empty = no snapshots)"),
     Setting("state", "snapshot_seconds", float, 30.0, "a number of seconds in (0, 86400]",
@@ -324,7 +329,8 @@ def load_config(path: str | os.PathLike | None = None, environ: Mapping[str, str
             values[(setting.section, setting.key)] = _coerce(setting, _parse_env(setting, environ[setting.env]),
                                                              setting.env)
             sources[(setting.section, setting.key)] = setting.env
-    unknown = sorted(k for k in environ if k.startswith(ENV_PREFIX) and k not in {s.env for s in SCHEMA})
+    unknown = sorted(k for k in environ if k.startswith(ENV_PREFIX) and k not in {s.env for s in SCHEMA}
+                     and k not in NOT_CONFIG_ENV)
     if unknown:
         raise ConfigError(f"unknown environment variable {unknown[0]} (see `shiftsieve config check`)")
     if values[("decision", "confirm_k")] > values[("decision", "confirm_m")]:

@@ -58,11 +58,16 @@ class Endpoints:
         return self
 
     def stop(self) -> None:
-        self.server.shutdown()
+        if self.thread.is_alive():   # shutdown() waits for serve_forever: it would hang if never started
+            self.server.shutdown()
         self.server.server_close()
 
 
 class _Server(ThreadingHTTPServer):
+    # socketserver's listen backlog is 5: a burst of connections (probes, scrapers, a port scan)
+    # beyond it has its SYNs dropped and every client waits the 1 s SYN retransmission
+    request_queue_size = 128
+
     def handle_error(self, request, client_address) -> None:
         # a client that went away or timed out mid-response (a scrape timeout, a port scan) is not
         # worth a traceback on stderr; anything else still gets socketserver's report

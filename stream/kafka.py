@@ -4,7 +4,8 @@ Built on kafka-python (3.x). The service never sees kafka-python objects:
 
 - `KafkaSettings` holds everything the clients need and turns it into the
   kafka-python keyword arguments (`consumer_kwargs`, `producer_kwargs`). Its
-  ``repr()`` never shows the SASL password, and nothing here logs it.
+  ``repr()`` never shows the SASL password, and nothing here logs it; kafka-python's
+  own DEBUG records of its SASL requests get it masked (`_RedactSecrets`).
 - `parse_kafka_url` reads ``kafka://HOST:PORT[,HOST:PORT]/TOPIC?group=NAME``.
 - `KafkaSource` is one member of a consumer group, subscribed to one topic,
   with ``enable_auto_commit=False``: offsets move only through `commit`, which

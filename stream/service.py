@@ -284,12 +284,13 @@ class Service:
                             time.monotonic() - self._snapshot_at >= self.config.state.snapshot_seconds:
                         self._snapshot()
                     durable = not engine.queued and (self.state is None or not engine.touched_since_snapshot)
-                if kafka and durable:
-                    # Offsets are committed once what they cover is durable: every vector is in its
-                    # model, the events are out and, with a state directory, every entity's snapshot
-                    # includes them. Outside the lock: a commit needs the client thread, which may
-                    # be waiting on it.
-                    source.commit(self._held())
+                if kafka:
+                    if durable:
+                        # Offsets are committed once what they cover is durable: every vector is in
+                        # its model, the events are out and, with a state directory, every entity's
+                        # snapshot includes them. Outside the lock: a commit needs the client thread,
+                        # which may be waiting on it.
+                        source.commit(self._held())
                     self.ready = source.ready
                     for (lag_topic, partition), behind in source.lag().items():
                         self.exporter.lag.labels(lag_topic, str(partition)).set(behind)

@@ -306,3 +306,10 @@ def test_a_byte_order_mark_on_the_first_line_is_not_a_bad_message(tmp_path):
                           capture_output=True, timeout=60)
     assert proc.returncode == 0, proc.stderr.decode()[-2000:]
     assert (tmp_path / "dead.jsonl").read_text() == ""
+
+
+def test_a_malformed_kafka_url_is_a_one_line_error():
+    proc = subprocess.run([sys.executable, "-m", "shiftsieve.stream.cli", "run", "--source", "kafka://broker/topic"],
+                          capture_output=True, timeout=60)
+    err = proc.stderr.decode().strip()
+    assert proc.returncode == 2 and len(err.splitlines()) == 1 and err.startswith("shiftsieve: error: --source:"), err
