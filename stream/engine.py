@@ -36,6 +36,7 @@ class EngineCounts:
     solver_iterations: int = 0
     solver_unconverged: int = 0
     events: int = 0
+    incidents: int = 0
     rewarmed: int = 0
 
 
@@ -52,7 +53,6 @@ class Engine:
         self.entities: dict[str, EntityStream] = {}
         self._pending: dict[str, list[Vector]] = {}
         self.counts = EngineCounts()
-        self.incidents: set[str] = set()
         self.touched: set[str] = set()   # entities that processed vectors since the caller last cleared it
         self.touched_since_snapshot: set[str] = set()
         self.rewarmed: list[tuple[str, str]] = []   # (entity, why) since the caller last cleared it
@@ -145,7 +145,8 @@ class Engine:
         self.counts.solver_unconverged += int(np.count_nonzero(~result.converged))
         for event in events_from_transitions(stream, result.transitions, ts):
             self.counts.events += 1
-            self.incidents.add(event["incident"])
+            if event.get("onset"):   # an incident opens once (counted, not kept: the service runs for ever)
+                self.counts.incidents += 1
             for sink in self.sinks:
                 sink(event)
 

@@ -122,6 +122,6 @@ def replay(path: str | Path, config: Config, *, events_path: str | None = None,
         raise InputError(f"{path}: no valid vector in the input ({sum(rejected_by_reason.values())} lines rejected)")
     return ReplaySummary(vectors=accepted, rejected=sum(rejected_by_reason.values()),
                          rejected_by_reason=rejected_by_reason, entities=len(engine.entities),
-                         incidents=len(engine.incidents), events=engine.counts.events,
+                         incidents=engine.counts.incidents, events=engine.counts.events,
                          solver_unconverged=engine.counts.solver_unconverged, rewarmed=engine.rewarmed,
                          seconds=time.perf_counter() - started)

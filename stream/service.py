@@ -367,6 +367,12 @@ class Service:
 
     def _forget(self, partitions: list[str]) -> None:
         gone = set(partitions)
+        for name in gone:   # a partition that moved away must not keep exporting its last lag
+            topic, _, partition = name.rpartition("/")
+            try:
+                self.exporter.lag.remove(topic, partition)
+            except KeyError:
+                pass
         for entity in [e for e, p in self._partition_of.items() if p in gone]:
             self._drop(entity)
 

@@ -52,3 +52,14 @@ def test_bench_service_runs(capsys, kafka_broker):
     assert re.search(r"p50 [0-9.]+ ms, p99 [0-9.]+ ms", out), out
     assert "peak RSS" in out, out
     assert len(re.findall(r"^\s+(?:service >=|>= 10,000).*:\s+(?:NOT )?met \(", out, re.M)) == 2, out
+
+
+def test_bench_memory_runs(capsys):
+    spec = importlib.util.spec_from_file_location("bench_memory", BENCH.with_name("bench_memory.py"))
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    assert mod.main(["--entities", "300", "--cap", "100"]) == 0
+    out = capsys.readouterr().out
+    for config in ("(a)", "(b)", "(c)"):
+        assert re.search(rf"^{re.escape(config)}\s+[0-9,]+\s+[0-9,]+\s+[0-9,]+", out, re.M), (config, out)
+    assert "memory per resident entity" in out, out

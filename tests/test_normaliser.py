@@ -2,6 +2,8 @@
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy.stats import median_abs_deviation
 
 from shiftsieve.models.normaliser import RobustNormaliser, symexp, symlog
@@ -51,3 +53,18 @@ def test_late_metric_learns_from_its_first_samples():
 def test_constant_metric_gets_a_floor_not_zero():
     norm = RobustNormaliser(np.zeros(1, bool)).fit(np.full((50, 1), 7.0))
     assert norm.scale[0] > 0 and np.isfinite(norm.transform(np.array([[8.0]]))).all()
+
+
+@given(st.integers(1, 40), st.integers(1, 6), st.floats(0, 1), st.integers(0, 2**32 - 1))
+@settings(max_examples=200, deadline=None)
+def test_column_median_equals_numpy_nanmedian(rows, cols, missing, seed):
+    """Reference: numpy.nanmedian (which column_median replaces for speed)."""
+    import warnings
+    from shiftsieve.models.normaliser import column_median
+    rng = np.random.default_rng(seed)
+    A = rng.normal(size=(rows, cols)).round(1)          # rounding makes ties common
+    A[rng.random((rows, cols)) < missing] = np.nan
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns
+        expected = np.nanmedian(A, axis=0)
+    np.testing.assert_array_equal(column_median(A), expected)

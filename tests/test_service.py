@@ -313,3 +313,17 @@ def test_a_malformed_kafka_url_is_a_one_line_error():
                           capture_output=True, timeout=60)
     err = proc.stderr.decode().strip()
     assert proc.returncode == 2 and len(err.splitlines()) == 1 and err.startswith("shiftsieve: error: --source:"), err
+
+
+def test_a_partition_that_moves_away_stops_exporting_its_lag():
+    from shiftsieve.stream.config import load_config
+    from shiftsieve.stream.engine import Engine
+    from shiftsieve.stream.service import Service
+
+    service = Service(load_config(None), source_url="-", listen="127.0.0.1:0")
+    service.engine = Engine.from_config(service.config)
+    service.exporter.lag.labels("pier-vectors", "0").set(12)
+    service.exporter.lag.labels("pier-vectors", "1").set(3)
+    service._forget(["pier-vectors/0"])
+    text = service.exporter.exposition().decode()
+    assert 'partition="0"' not in text and 'shiftsieve_consumer_lag_messages{partition="1",topic="pier-vectors"} 3.0' in text
