@@ -144,23 +144,22 @@ class Exporter:
                     self.shift.labels(label, label_value(column)).set(float(tracker.peak_shift[j]))
             for column in exported - live:   # resolved, adapted, quiet again, or the metric was dropped
                 exported.discard(column)
-                self._shift_count -= 1
-                for gauge in (self.state, self.shift):
-                    try:
-                        gauge.remove(label, label_value(column))
-                    except KeyError:
-                        pass
+                self._remove_shift(label, column)
+
+    def _remove_shift(self, label: str, column: str) -> None:
+        """Drop one exported metric's state and shift series (the caller updates its key set)."""
+        self._shift_count -= 1
+        for gauge in (self.state, self.shift):
+            try:
+                gauge.remove(label, label_value(column))
+            except KeyError:
+                pass
 
     def forget(self, entity: str) -> None:
         """Remove every series of ``entity`` (it moved to another process or was evicted)."""
         label = label_value(entity)
         for column in self._shift_keys.pop(entity, set()):
-            self._shift_count -= 1
-            for gauge in (self.state, self.shift):
-                try:
-                    gauge.remove(label, label_value(column))
-                except KeyError:
-                    pass
+            self._remove_shift(label, column)
         if entity in self._entity_keys:
             self._entity_keys.discard(entity)
             for gauge in (self.rank, self.warming, self.last_sample, self.residual):

@@ -12,7 +12,7 @@ import time
 from contextlib import ExitStack
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable, TextIO
+from typing import TextIO
 
 from .config import Config
 from .decode import DecodeLimits, encode_vector

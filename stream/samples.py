@@ -66,10 +66,9 @@ from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-import orjson
 
-from .decode import (DEFAULT_LIMITS, load_json, DecodeError, DecodeLimits, Vector, _is_number, _is_utf8, _kind, _labels,
-                     _parse_lenient, _show, _timestamp, check_size)
+from .decode import (DEFAULT_LIMITS, DecodeError, DecodeLimits, Vector, _is_number, _is_utf8, _kind, _labels,
+                     _show, _timestamp, load_json)
 
 __all__ = [
     "REJECT_REASONS",

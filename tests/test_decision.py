@@ -19,7 +19,6 @@ def reference_run(active, stat, cfg: DecisionConfig):
     firing_for = [0] * n
     out = []
     for t in range(B):
-        muted_rows = set()
         for j in range(n):
             a = bool(active[t, j])
             window[j] = (window[j] + [a])[-cfg.confirm_m:]

@@ -22,7 +22,6 @@ import urllib.request
 from pathlib import Path
 
 import numpy as np
-import pytest
 from kafka import KafkaAdminClient, KafkaConsumer, KafkaProducer, TopicPartition
 from kafka.admin import NewTopic
 

@@ -533,7 +533,9 @@ def test_replay_jsonl_counts_add_up(tmp_path: Path, lines: list[bytes], ends: li
 CSV_CELLS = ["", "nan", "NaN", "inf", "-Infinity", "1e999", "-1e400", "1_000", " 1", "0x10", "NA", "null", "true",
              "1" * 400, "é", "😀", 'a"b', "a,b", "\\", "{}", "1780000000", "2026-05-28T12:00:00Z", "0.5"]
 csv_names = st.lists(st.sampled_from(['a"b', "c,d", "x y", "😀", "e\u0301", "\u202eq", "#", "{}", "a\\b", "\tt"])
-                     | st.text(st.characters(exclude_characters="\r\n\x00"), min_size=1, max_size=6),
+                     # no lone surrogates: a header that is not UTF-8 is an InputError for the whole file
+                     | st.text(st.characters(exclude_characters="\r\n\x00", exclude_categories=("Cs",)),
+                               min_size=1, max_size=6),
                      min_size=1, max_size=4, unique_by=lambda n: n.lstrip(" ")).filter(
     lambda ns: all(n.lstrip(" ") and n.lstrip(" ") not in ("ts", "entity") for n in ns))
 csv_cells = st.sampled_from(CSV_CELLS) | hostile_text

@@ -18,6 +18,7 @@ import time
 
 import pytest
 
+from conftest import free_port
 from shiftsieve.stream.demo import scenarios
 
 pytestmark = pytest.mark.skipif(shutil.which("kcat") is None,
@@ -26,11 +27,6 @@ pytestmark = pytest.mark.skipif(shutil.which("kcat") is None,
 # Expected values: the bundled labels file replay_data/single_shift.labels.json (its only incident).
 ENTITY, TOP_METRIC = "booking-api-2", "db_pool_wait_p99_ms"
 
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 # Why kcat talks to the broker through HandshakeRelay: Debian 12's kcat links librdkafka 2.0.2, which

@@ -4,7 +4,6 @@ import gzip
 import json
 import shutil
 import signal
-import socket
 import subprocess
 import sys
 import time
@@ -14,13 +13,9 @@ import urllib.request
 import numpy as np
 import pytest
 
+from conftest import free_port
 from shiftsieve.stream.demo import scenarios
 
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def get(url: str) -> tuple[int, bytes]:

@@ -4,22 +4,17 @@ import gzip
 import json
 import os
 import signal
-import socket
 import subprocess
 import sys
 import time
 
 from kafka import KafkaConsumer, KafkaProducer
 
+from conftest import free_port
 from shiftsieve.stream.demo import scenarios
 
 API = (2, 5, 0)   # DESIGN.md section 4: the version that makes consumer groups settle on this broker
 
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def test_produce_detect_alert_topic_and_dead_letters(kafka_broker, kafka_topic, tmp_path):

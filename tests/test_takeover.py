@@ -19,7 +19,6 @@ import urllib.request
 from pathlib import Path
 
 import numpy as np
-import pytest
 from kafka import KafkaProducer
 
 API = (2, 5, 0)   # DESIGN.md section 4: groups of two settle on this broker with this version
