@@ -68,8 +68,8 @@ class LineSource:
                 for line in lines:
                     number += 1
                     line = line.rstrip(b"\r")
-                    if number == 1 and line.startswith(b"\xef\xbb\xbf"):   # a UTF-8 BOM, as replay strips it
-                        line = line[3:]
+                    if number == 1 and line.startswith(b"\xef\xbb\xbf") and line[3:].strip():
+                        line = line[3:]   # a UTF-8 BOM, stripped as replay does (a BOM alone stays a bad line)
                     if line.strip():
                         self._queue.put((number, line))   # blocks when the detector falls behind
                 if len(pending) > self.max_line:   # keep a line's head only: the decoder rejects it as too large
