@@ -310,8 +310,8 @@ class Service:
     def _take(self, lines: list[tuple[int, bytes, str]]) -> None:
         """One poll's messages: decode and feed them (an entity's batch runs once it is full)."""
         started = time.perf_counter()
-        for number, line, partition in lines:
-            self._consume(number, line, partition)
+        self.exporter.consumed.inc(len(lines))   # counters once per poll, not per message
+        self.exporter.decoded.inc(sum(self._consume(number, line, partition) for number, line, partition in lines))
         stamps = getattr(self.source, "timestamps_ms", None)
         if stamps and min(stamps) >= 0 and self._oldest_ms is None:
             self._oldest_ms = min(stamps)
@@ -395,15 +395,15 @@ class Service:
             self._drop(entity)
             self.exporter.evicted.inc()
 
-    def _consume(self, number: int, line: bytes, partition: str = "") -> None:
-        self.exporter.consumed.inc()
+    def _consume(self, number: int, line: bytes, partition: str = "") -> bool:
+        """Decode and feed one message; False when it was dead-lettered as undecodable."""
         try:
             vectors = self._vectors(line, number, partition)
         except DecodeError as exc:
             self._dead_letter(number, line, exc.reason, str(exc))
-            return
-        self.exporter.decoded.inc()
+            return False
         self._feed(vectors, number, partition)
+        return True
 
     def _feed(self, vectors: list[Vector], number: int, partition: str = "") -> None:
         engine = self.engine

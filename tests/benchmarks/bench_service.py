@@ -139,8 +139,11 @@ class Recorder:
         self.latency = False
         self.latencies: list[float] = []   # seconds, send -> gauges updated
         self._stamps: list[int] = []       # Kafka timestamps (ms) taken since the last refresh
+        self.first_take: float | None = None
 
     def take(self, lines) -> None:
+        if self.first_take is None:
+            self.first_take = time.perf_counter()   # the first records are in hand
         self._take(lines)
         self._stamps.extend(getattr(self.service.source, "timestamps_ms", None) or [])
 
@@ -242,10 +245,9 @@ def run(args: argparse.Namespace, port: int) -> dict:
     thread = threading.Thread(target=target, name="bench-service", daemon=True)
     started = time.perf_counter()
     thread.start()
-    consumed = service.exporter.consumed._value
     try:
-        _wait(lambda: consumed.get() > 0 or failure, 60, 0.001, "the service's first record")
-        t_first, cpu_first = time.perf_counter(), _cpu_seconds()
+        _wait(lambda: rec.first_take is not None or failure, 60, 0.001, "the service's first record")
+        t_first, cpu_first = rec.first_take, _cpu_seconds()
         _wait(lambda: (service.engine.counts.processed >= N) or failure, 60 + N / 500, 0.02,
               f"the service to process {N:,} vectors")
         cpu_last = _cpu_seconds()
