@@ -74,6 +74,19 @@ def find_tansu(scratch: Path) -> tuple[Path | None, str]:
     return None, why
 
 
+def exposition_samples(text: str) -> dict[str, float]:
+    """The sample lines of a Prometheus text exposition as {"name{labels}": value}."""
+    return {line.rsplit(" ", 1)[0]: float(line.rsplit(" ", 1)[1])
+            for line in text.splitlines() if line and not line.startswith("#")}
+
+
+def scrape(port: int) -> dict[str, float]:
+    """The samples of a local service's /metrics (OSError if it does not answer)."""
+    import urllib.request
+    with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as r:
+        return exposition_samples(r.read().decode())
+
+
 def free_port() -> int:
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
         s.bind(("127.0.0.1", 0))

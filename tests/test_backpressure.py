@@ -33,7 +33,6 @@ import signal
 import subprocess
 import sys
 import time
-import urllib.request
 
 import numpy as np
 import orjson
@@ -83,12 +82,6 @@ def _produce(broker: str, topic: str, messages: list[tuple[bytes, bytes]]) -> No
     producer.close()
 
 
-def _scrape(port: int) -> dict[str, float]:
-    with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as r:
-        text = r.read().decode()
-    return {line.rsplit(" ", 1)[0]: float(line.rsplit(" ", 1)[1])
-            for line in text.splitlines() if line and not line.startswith("#")}
-
 
 def _status_mib(pid: int, field: str) -> float:
     with open(f"/proc/{pid}/status") as f:
@@ -100,7 +93,7 @@ def _status_mib(pid: int, field: str) -> float:
 
 def _drain(broker: str, topic: str, tmp_path, backlog: int, seed: int) -> dict:
     """Produce ``backlog`` messages, run the service until it has consumed them all; the samples."""
-    from conftest import free_port
+    from conftest import free_port, scrape
     messages = _messages(backlog, seed)
     raw_bytes = sum(len(v) for _, v in messages)
     _produce(broker, topic, messages)
@@ -120,7 +113,7 @@ def _drain(broker: str, topic: str, tmp_path, backlog: int, seed: int) -> dict:
             assert proc.poll() is None, f"the service exited ({proc.returncode}): {stderr.read_text()[-2000:]}"
             assert time.monotonic() - started < 45, f"backlog of {backlog:,} not drained in 45 s: {samples[-3:]}"
             try:
-                metrics = _scrape(port)
+                metrics = scrape(port)
             except OSError:
                 metrics = None
             if metrics is not None:

@@ -12,7 +12,6 @@ import os
 import subprocess
 import sys
 import time
-import urllib.request
 
 import numpy as np
 
@@ -36,14 +35,9 @@ def lines(entities: list[str], count: int, start: int, seed: int) -> bytes:
     return ("\n".join(out) + "\n").encode()
 
 
-def scrape(port: int) -> dict[str, float]:
-    with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as r:
-        text = r.read().decode()
-    return {l.rsplit(" ", 1)[0]: float(l.rsplit(" ", 1)[1]) for l in text.splitlines() if l and l[0] != "#"}
-
 
 def test_evicted_models_are_spilled_and_restored(tmp_path):
-    from conftest import free_port
+    from conftest import free_port, scrape
     port = free_port()
     env = {**os.environ, "SHIFTSIEVE_MODEL_WARMUP": str(WARMUP), "SHIFTSIEVE_ENGINE_MAX_RESIDENT": "2",
            "SHIFTSIEVE_STATE_DIRECTORY": f'"{tmp_path / "state"}"'}

@@ -25,7 +25,7 @@ import numpy as np
 from kafka import KafkaAdminClient, KafkaConsumer, KafkaProducer, TopicPartition
 from kafka.admin import NewTopic
 
-from conftest import free_port
+from conftest import exposition_samples, free_port
 
 API = (2, 5, 0)   # DESIGN.md section 4: consumer groups settle on this broker with this version
 N_METRICS, SHIFT, SHIFTED_METRIC = 20, 12.0, "m07"
@@ -180,8 +180,7 @@ class Run:
         status, text = self.get("/metrics")
         if status != 200:
             return {}
-        return {line.rsplit(" ", 1)[0]: float(line.rsplit(" ", 1)[1])
-                for line in text.splitlines() if line and not line.startswith("#")}
+        return exposition_samples(text)
 
     def ready(self) -> bool:
         return self.get("/readyz")[0] == 200

@@ -53,12 +53,6 @@ def _produce(broker: str, topic: str, per_entity: dict[str, list[bytes]]) -> Non
     producer.close()
 
 
-def _metrics(port: int) -> dict[str, float]:
-    with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as r:
-        text = r.read().decode()
-    return {line.rsplit(" ", 1)[0]: float(line.rsplit(" ", 1)[1])
-            for line in text.splitlines() if line and not line.startswith("#")}
-
 
 def _ready(port: int) -> bool:
     try:
@@ -86,7 +80,7 @@ def _events(path: Path) -> list[dict]:
 
 
 def test_the_survivor_takes_over_a_killed_members_entities_with_their_models(kafka_broker, kafka_topic, tmp_path):
-    from conftest import free_port
+    from conftest import free_port, scrape
     topic = kafka_topic(partitions=2)
     config = tmp_path / "shiftsieve.toml"
     config.write_text(f"[model]\nwarmup = {WARMUP}\n\n[state]\ndirectory = \"{tmp_path / 'state'}\"\n"
@@ -108,7 +102,7 @@ def test_the_survivor_takes_over_a_killed_members_entities_with_their_models(kaf
         owners = {}
         for name, _, port in members:
             def warmed(port=port):
-                m = _metrics(port)
+                m = scrape(port)
                 mine = [e for e in ENTITIES if m.get(f'shiftsieve_entity_warming_up{{entity="{e}"}}') == 0.0]
                 return mine if len(mine) == 2 and m.get("shiftsieve_messages_consumed_total") == 2 * QUIET else None
             owners[name] = _wait(warmed, 90, f"member {name} to warm up its two entities")
@@ -127,7 +121,7 @@ def test_the_survivor_takes_over_a_killed_members_entities_with_their_models(kaf
                       and e["metrics"][0]["name"] == SHIFTED_METRIC}
             return firing if firing == set(ENTITIES) else None
         _wait(firing_for_all, 120, "the survivor to alert on every entity, the killed member's included")
-        m = _metrics(port)
+        m = scrape(port)
         for entity in owners["a"]:   # taken over with its model: not warming up, shift exported
             assert m[f'shiftsieve_entity_warming_up{{entity="{entity}"}}'] == 0.0
             assert m[f'shiftsieve_shift_sigma{{entity="{entity}",metric="{SHIFTED_METRIC}"}}'] > 5
