@@ -1,11 +1,13 @@
 """``shiftsieve run``: the long-running detector.
 
-    source (stdin, a file) -> decode -> engine (assemble -> model -> decide) -> sinks
-                                                      \\-> exporter (/metrics, /healthz, /readyz)
+    source (Kafka, stdin, a file) -> decode -> engine (assemble -> model -> decide) -> sinks
+                                                              \\-> exporter (/metrics, /healthz, /readyz)
 
-Each poll's messages are decoded and fed to the engine, which then flushes: every
-entity's batch is whatever arrived in that poll.  Bad messages never stop the
-service: they are counted and dead-lettered.  SIGTERM (or SIGINT) ends the current
+Each poll's messages are decoded and fed to the engine; an entity's batch runs when it is
+full, and the rest at a flush: at once when the source is caught up, otherwise at most
+every engine.max_delay_seconds.  Offsets are committed only when nothing consumed waits
+outside a model (and, with a state directory, outside a snapshot).  Bad messages never
+stop the service: they are counted and dead-lettered.  SIGTERM (or SIGINT) ends the current
 poll, flushes, closes the sinks and returns exit status 0.  A file or stdin source
 ends the service at its end.
 """
@@ -320,8 +322,9 @@ class Service:
     def _flush(self) -> None:
         """Run every queued vector, send the events, update the gauges and hold the memory bound.
 
-        Called at most every engine.max_delay_seconds: between calls the vectors of a backlog
-        queue up into full batches, which is what makes catching up fast (see DEVELOPERS.md)."""
+        Called when the source is caught up, and at most every engine.max_delay_seconds while it
+        is behind: between calls a backlog's vectors queue up into full batches, which is what
+        makes catching up fast (see DEVELOPERS.md)."""
         started = time.perf_counter()
         self.engine.flush()
         if self.assembler is not None:
