@@ -87,6 +87,27 @@ def scrape(port: int) -> dict[str, float]:
         return exposition_samples(r.read().decode())
 
 
+def ready(port: int) -> bool:
+    """Whether a local service answers /readyz with 200."""
+    import urllib.request
+    try:
+        with urllib.request.urlopen(f"http://127.0.0.1:{port}/readyz", timeout=5) as r:
+            return r.status == 200
+    except OSError:
+        return False
+
+
+def recv_exactly(sock: socket.socket, n: int) -> bytes:
+    """``n`` bytes from ``sock`` (EOFError if the peer closes first): one Kafka frame part."""
+    data = b""
+    while len(data) < n:
+        chunk = sock.recv(n - len(data))
+        if not chunk:
+            raise EOFError
+        data += chunk
+    return data
+
+
 def free_port() -> int:
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
         s.bind(("127.0.0.1", 0))

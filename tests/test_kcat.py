@@ -18,7 +18,7 @@ import time
 
 import pytest
 
-from conftest import free_port
+from conftest import free_port, recv_exactly
 from shiftsieve.stream.demo import scenarios
 
 pytestmark = pytest.mark.skipif(shutil.which("kcat") is None,
@@ -133,21 +133,11 @@ class HandshakeRelay:
             for args in ((client, server, pending, True), (server, client, pending, False)):
                 threading.Thread(target=self._pump, args=args, daemon=True).start()
 
-    @staticmethod
-    def _read(sock: socket.socket, n: int) -> bytes:
-        data = b""
-        while len(data) < n:
-            chunk = sock.recv(n - len(data))
-            if not chunk:
-                raise EOFError
-            data += chunk
-        return data
-
     def _pump(self, src: socket.socket, dst: socket.socket, pending: dict, requests: bool) -> None:
         try:
             while True:
-                (size,) = struct.unpack(">i", self._read(src, 4))
-                frame = self._read(src, size)
+                (size,) = struct.unpack(">i", recv_exactly(src, 4))
+                frame = recv_exactly(src, size)
                 if requests:
                     key, version, corr = struct.unpack_from(">hhi", frame)
                     pending[corr] = (key, version)

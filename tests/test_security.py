@@ -23,6 +23,7 @@ from pathlib import Path
 
 import pytest
 
+from conftest import recv_exactly
 from shiftsieve.stream import endpoints as endpoints_module
 from shiftsieve.stream.cli import main
 from shiftsieve.stream.config import ENV_PREFIX, SCHEMA, ConfigError, load_config
@@ -328,16 +329,6 @@ class _SaslOnlyBroker:
                 return
             threading.Thread(target=self._serve, args=(conn,), daemon=True).start()
 
-    @staticmethod
-    def _read(conn: socket.socket, n: int) -> bytes:
-        data = b""
-        while len(data) < n:
-            chunk = conn.recv(n - len(data))
-            if not chunk:
-                raise EOFError
-            data += chunk
-        return data
-
     def _serve(self, conn: socket.socket) -> None:
         from kafka.protocol.metadata.api_versions import ApiVersionsResponse
         from kafka.protocol.sasl import SaslAuthenticateResponse, SaslHandshakeResponse
@@ -345,8 +336,8 @@ class _SaslOnlyBroker:
         try:
             with conn:
                 while True:
-                    (size,) = struct.unpack(">i", self._read(conn, 4))
-                    api_key, api_version, correlation_id = struct.unpack(">hhi", self._read(conn, size)[:8])
+                    (size,) = struct.unpack(">i", recv_exactly(conn, 4))
+                    api_key, api_version, correlation_id = struct.unpack(">hhi", recv_exactly(conn, size)[:8])
                     if api_key == 18:      # ApiVersions
                         response = ApiVersionsResponse(version=api_version, error_code=0, throttle_time_ms=0, api_keys=[
                             version(api_key=18, min_version=0, max_version=3),

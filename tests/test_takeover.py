@@ -15,7 +15,6 @@ import signal
 import subprocess
 import sys
 import time
-import urllib.request
 from pathlib import Path
 
 import numpy as np
@@ -54,14 +53,6 @@ def _produce(broker: str, topic: str, per_entity: dict[str, list[bytes]]) -> Non
 
 
 
-def _ready(port: int) -> bool:
-    try:
-        with urllib.request.urlopen(f"http://127.0.0.1:{port}/readyz", timeout=5) as r:
-            return r.status == 200
-    except OSError:
-        return False
-
-
 def _wait(predicate, timeout: float, what: str):
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
@@ -80,7 +71,7 @@ def _events(path: Path) -> list[dict]:
 
 
 def test_the_survivor_takes_over_a_killed_members_entities_with_their_models(kafka_broker, kafka_topic, tmp_path):
-    from conftest import free_port, scrape
+    from conftest import free_port, ready, scrape
     topic = kafka_topic(partitions=2)
     config = tmp_path / "shiftsieve.toml"
     config.write_text(f"[model]\nwarmup = {WARMUP}\n\n[state]\ndirectory = \"{tmp_path / 'state'}\"\n"
@@ -96,7 +87,7 @@ def test_the_survivor_takes_over_a_killed_members_entities_with_their_models(kaf
                 env=os.environ.copy(), stderr=open(tmp_path / f"stderr-{name}.txt", "wb"))
             members.append((name, proc, port))
         for name, _, port in members:   # both members own a partition
-            _wait(lambda: _ready(port), 90, f"member {name} ready")
+            _wait(lambda: ready(port), 90, f"member {name} ready")
 
         _produce(kafka_broker, topic, _vectors(seed=1, count=QUIET, start=0, shift=0.0))
         owners = {}
