@@ -141,6 +141,7 @@ class KafkaInput:
         self._next: dict[tuple[str, int], int] = {}
         self._committed: dict[tuple[str, int], int] = {}
         self.timestamps_ms: list[int] = []   # Kafka timestamps of the last poll's records
+        self.behind: dict[tuple[str, int], int] = {}   # lag per partition after the last poll
 
     def _call(self, hook: str, parts: list[tuple[str, int]]) -> None:
         if self._hooks[hook] is not None:
@@ -167,12 +168,13 @@ class KafkaInput:
         for r in records:
             self._next[(r.topic, r.partition)] = r.offset + 1
         self.timestamps_ms = [r.timestamp_ms for r in records]
+        self.behind = self.source.lag()   # once per poll: caught_up and the lag gauge both read it
         return [(r.offset, r.value, f"{r.topic}/{r.partition}") for r in records]
 
     @property
     def caught_up(self) -> bool:
         """No assigned partition has records beyond what was polled (as of the last fetch)."""
-        return not any(self.source.lag().values())
+        return not any(self.behind.values())
 
     def positions(self) -> dict[str, int]:
         """Next offset per partition consumed so far."""
@@ -193,9 +195,6 @@ class KafkaInput:
                 target[(t, p)] = offset
         if target and self.source.commit(target):
             self._committed.update(target)
-
-    def lag(self) -> dict[tuple[str, int], int]:
-        return self.source.lag()
 
     def close(self) -> None:
         self.source.close()
@@ -275,7 +274,7 @@ class Service:
             max_delay = self.config.engine.max_delay_seconds
             while not self.stopping.is_set():
                 lines = source.poll(poll)
-                caught_up = source.caught_up   # outside the lock: it asks the Kafka client
+                caught_up = source.caught_up
                 with self._lock:   # rebalance callbacks run on the Kafka client's thread
                     if lines:
                         self._take(lines)
@@ -294,7 +293,7 @@ class Service:
                         # which may be waiting on it.
                         source.commit(self._held())
                     self.ready = source.ready
-                    for (lag_topic, partition), behind in source.lag().items():
+                    for (lag_topic, partition), behind in source.behind.items():
                         self.exporter.lag.labels(lag_topic, str(partition)).set(behind)
                 if source.exhausted:
                     break

@@ -282,6 +282,9 @@ def test_commits_never_pass_a_held_offset(monkeypatch):
         def commit(self, offsets):
             self.commits.append(dict(offsets))
             return True
+
+        def lag(self):
+            return {}
     monkeypatch.setattr(kafka_module, "KafkaSource", FakeSource)
     source = KafkaInput(settings=None)
     source.poll(0.1)
