@@ -11,7 +11,6 @@ names absent for ``drop_after`` samples are dropped once they are quiet.
 from __future__ import annotations
 
 import fnmatch
-import itertools
 import re
 from dataclasses import dataclass
 
@@ -20,7 +19,7 @@ import numpy as np
 from shiftsieve.models.decision import QUIET
 from shiftsieve.models.detector import DetectorConfig, EntityDetector
 
-from .decode import Vector
+from .decode import Layout, Vector
 
 
 _SERIES = re.compile(r'^[^{}]*\{(.*)\}$')
@@ -85,7 +84,7 @@ class EntityStream:
         self.index: dict[str, int] = {}
         self.detector = EntityDetector(0, np.zeros(0, bool), config)
         self.group_labels: list[str] = []
-        self._positions: dict[tuple[str, ...], np.ndarray] = {}
+        self._positions: dict[Layout, tuple[np.ndarray, bool]] = {}
         self._last_seen = np.zeros(0, dtype=np.int64)
         self.ignored_metrics = 0
         self.last_ts = float("-inf")
@@ -95,24 +94,23 @@ class EntityStream:
     def assemble(self, vectors: list[Vector]) -> tuple[np.ndarray, np.ndarray]:
         """Dense ``X`` (B, n) and ``ts`` (B,) for a batch of this entity's vectors, in order.
 
-        Rows are converted per key layout (producers use one or a few), each layout's values in
-        one ``np.fromiter`` call: per-row conversion was the largest cost of the service's batch.
+        Rows are grouped by their shared name layout (producers use one or a few) and each
+        group's value arrays are stacked at once; when a layout is exactly the entity's columns,
+        the stack is ``X`` itself.
         """
-        keys = [tuple(v.metrics) for v in vectors]
-        self._admit_new_names(vectors, keys)
-        X = np.full((len(vectors), len(self.names)), np.nan)
-        layouts: dict[tuple[str, ...], list[int]] = {}
-        for row, k in enumerate(keys):
-            layouts.setdefault(k, []).append(row)
-        for k, rows in layouts.items():
-            pos = self._positions.get(k)
-            if pos is None:
-                pos = self._positions_for(k)
-            try:
-                block = np.fromiter(itertools.chain.from_iterable(vectors[r].metrics.values() for r in rows),
-                                    dtype=float, count=len(rows) * len(k)).reshape(len(rows), len(k))
-            except TypeError:   # missing values (None): the slower conversion maps them to NaN
-                block = np.array([list(vectors[r].metrics.values()) for r in rows], dtype=float)
+        layouts: dict[Layout, list[int]] = {}
+        for row, vector in enumerate(vectors):
+            layouts.setdefault(vector.layout, []).append(row)
+        self._admit_new_names(layouts)
+        X = None
+        for layout, rows in layouts.items():
+            pos, identity = self._positions.get(layout) or self._positions_for(layout)
+            block = np.stack([vectors[r].values for r in rows])
+            if identity and len(rows) == len(vectors):
+                X = block   # the common case: one layout, the entity's own column order
+                break
+            if X is None:
+                X = np.full((len(vectors), len(self.names)), np.nan)
             known = pos >= 0
             if not known.all():   # names beyond max_metrics
                 pos, block = pos[known], block[:, known]
@@ -123,17 +121,19 @@ class EntityStream:
             self.labels = vectors[-1].labels
         return X, ts
 
-    def _positions_for(self, keys: tuple[str, ...]) -> np.ndarray:
-        pos = np.array([self.index.get(k, -1) for k in keys], dtype=np.int64)
+    def _positions_for(self, layout: Layout) -> tuple[np.ndarray, bool]:
+        """Column of each name (-1: beyond max_metrics), and whether that is exactly 0..n-1."""
+        pos = np.array([self.index.get(k, -1) for k in layout.names], dtype=np.int64)
+        found = (pos, pos.size == len(self.names) and bool((pos == np.arange(pos.size)).all()))
         if len(self._positions) < 64:   # bounded cache: producers use few key layouts
-            self._positions[keys] = pos
-        return pos
+            self._positions[layout] = found
+        return found
 
-    def _admit_new_names(self, vectors: list[Vector], keys: list[tuple[str, ...]]) -> None:
+    def _admit_new_names(self, layouts: dict[Layout, list[int]]) -> None:
         fresh: dict[str, None] = {}
-        for vec, k in zip(vectors, keys):
-            if len(k) != len(self.index) or k not in self._positions:
-                fresh.update((name, None) for name in k if name not in self.index)
+        for layout in layouts:
+            if layout not in self._positions:
+                fresh.update((name, None) for name in layout.names if name not in self.index)
         if not fresh:
             return
         room = self.rules.max_metrics - len(self.names)

@@ -50,6 +50,9 @@ def assert_invariants(v: Vector, limits: DecodeLimits = DEFAULT_LIMITS) -> None:
         if reason != "bad_name":
             assert v.metrics[name] is None
     assert all(isinstance(k, str) and k and isinstance(x, str) for k, x in v.labels.items())
+    # the layout and array assembly stacks are the metrics themselves, NaN where missing
+    assert v.layout.names == tuple(v.metrics) and v.values.dtype == np.float64
+    np.testing.assert_array_equal(v.values, [np.nan if x is None else x for x in v.metrics.values()])
     # every kept string is valid UTF-8: the vector can be written out again (events, snapshots)
     orjson.dumps({"entity": v.entity, "metrics": v.metrics, "labels": v.labels, "invalid": v.invalid})
 
@@ -394,8 +397,12 @@ def test_property_damaged_messages(obj: dict, junk: bytes, at: int) -> None:
 def test_property_fast_path_agrees_with_checked_path(metrics: dict, limits: DecodeLimits) -> None:
     fast = decode._metrics_fast(metrics, limits)
     if fast is not None:
-        assert fast == decode._metrics_checked(metrics, limits)
+        assert fast[:2] == decode._metrics_checked(metrics, limits)[:2]
         assert all(type(x) in (float, type(None)) for x in fast[0].values())
+        # the array the fast path builds is the one a Vector derives from the checked dict
+        derived = Vector(0.0, "e", fast[0], {})
+        assert fast[2] is derived.layout and fast[2].names == tuple(fast[0])
+        np.testing.assert_array_equal(fast[3], derived.values)
 
 
 @FAST
