@@ -122,20 +122,23 @@ class AlertTracker:
         cfg = self.config
         if columns is None:
             columns = np.arange(self.n_metrics)
-        else:
-            outside = np.ones(self.n_metrics, dtype=bool)
-            outside[columns] = False
-            self.history[outside] = self._shifted(self.history[outside], B)
+        else:   # the other metrics (quiet, inactive) only age
+            inside = self.history[columns]
+            self.idle(B)
+            self.history[columns] = inside
         # Window counts ignore resets inside the batch, so they bound the true counts from above:
         # a metric that never reaches confirm_k and is not firing cannot change anything but its
         # history and its quiet/pending flag, which are computed for all such metrics at once.
         # Cheapest bound first: fewer than confirm_k active samples in the batch and history.
         firing = self.state[columns] == FIRING
         enough = active.sum(axis=0) + np.bitwise_count(self.history[columns]) >= cfg.confirm_k
-        maybe = np.flatnonzero(firing | enough)
+        maybe = (firing | enough).nonzero()[0]
+        if maybe.size == 0:   # the common case: nothing can happen in this batch
+            self._advance_quietly(active, columns)
+            return []
         can_fire = self._window_counts(active[:, maybe], columns[maybe]) >= cfg.confirm_k
-        hot_local = maybe[firing[maybe] | can_fire.any(axis=0)]
-        can_fire = can_fire[:, np.isin(maybe, hot_local)]
+        is_hot = firing[maybe] | can_fire.any(axis=0)
+        hot_local, can_fire = maybe[is_hot], can_fire[:, is_hot]
         cold = np.ones(columns.size, dtype=bool)
         cold[hot_local] = False
         self._advance_quietly(active[:, cold], columns[cold])
@@ -157,6 +160,10 @@ class AlertTracker:
                                       value[event], expected[event], float(ts[event]), muted))
             row = event + 1
         return out
+
+    def idle(self, samples: int) -> None:
+        """Advance over ``samples`` samples in which every metric is quiet and inactive: histories age."""
+        self.history = self._shifted(self.history, samples)
 
     def _next_possible_event(self, row: int, hot: np.ndarray, stat: np.ndarray, can_fire: np.ndarray) -> int:
         """First row >= ``row`` at which a hot metric could fire, clear or adapt (B if none)."""
@@ -248,7 +255,7 @@ class AlertTracker:
         L = active.shape[0]
         if L == 0 or metrics.size == 0:
             return
-        tail = active[-min(L, 63):][::-1].astype(np.uint64)
+        tail = active[-min(L, self.config.confirm_m):][::-1].astype(np.uint64)   # older bits leave the window
         bits = np.bitwise_or.reduce(tail << np.arange(tail.shape[0], dtype=np.uint64)[:, None], axis=0)
         history = (self._shifted(self.history[metrics], L) | bits) & self._window_mask
         self.history[metrics] = history

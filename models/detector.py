@@ -278,31 +278,31 @@ class EntityDetector:
         if phi is not None:
             penalty[n:] *= cfg.group_weight
         Zo = Z if mask is None else np.where(mask, Z, 0.0)   # the solver fixes unobserved columns at 0
-        fit = solve_projected_lasso(Zo, U, penalty, phi=phi, mask=mask, init=self.warm_start,
-                                    tol=cfg.tol, max_iter=cfg.max_iter, lipschitz=self._lipschitz)
+        fit = solve_projected_lasso(Zo, U, penalty, phi=phi, mask=mask, init=self.warm_start, tol=cfg.tol,
+                                    max_iter=cfg.max_iter, lipschitz=self._lipschitz, check_input=False)
         # Least-squares refit of the selected shifts (unbiased magnitudes). Shifts live in the
         # few rows with a support, so everything about them is computed on those rows only.
         support, coef_rows, coords_rows = refit_solution(Zo, U, fit, phi=phi, mask=mask, check_input=False)
         coords = fit.coords
         effect = np.zeros((B, n))         # refitted per-metric shift Phi s~ (normalised units)
         shift_sigma = np.zeros((B, n))
-        selected = np.zeros((B, n), dtype=bool)
+        selected = metric_effect(fit.coef[support], phi) != 0   # (support rows, n): what the LASSO chose
         if support.size:
             coords = coords.copy()
             coords[support] = coords_rows
-            effect[support] = metric_effect(coef_rows, phi)
-            shift_sigma[support] = effect[support] / self.residual_scale   # zero wherever unobserved
-            selected[support] = metric_effect(fit.coef[support], phi) != 0
-            Z[support] -= effect[support]   # Z is ours: from here on it is the cleaned signal
+            effect[support] = effect_rows = metric_effect(coef_rows, phi)
+            shift_sigma[support] = effect_rows / self.residual_scale   # zero wherever unobserved
+            Z[support] -= effect_rows   # Z is ours: from here on it is the cleaned signal
         transitions = self._decide(X, ts, support, coef_rows, fit.coef, fit.residual, coords, shift_sigma)
-        self._learn(Z, present, mask, effect, coords, fit.residual, support, selected, transitions)
+        squares = fit.residual * fit.residual   # zero at unobserved entries
+        self._learn(Z, present, mask, effect, coords, squares, support, selected, transitions)
         if not modelled.all():
             self._fold_in(Z, present & settled & ~modelled, coords)
         if leading:   # rows refer to the caller's batch, which began with warm-up vectors
             transitions = [replace(t, row=t.row + leading) for t in transitions]
         self.warm_start = fit.coef[-1].copy()
         self.samples += B
-        residual_norm = np.sqrt(np.einsum("ij,ij->i", fit.residual, fit.residual / self.residual_scale ** 2))
+        residual_norm = np.sqrt(squares @ (1.0 / self.residual_scale ** 2))
         units = (U, norm.loc, norm.scale, norm.log_mask)   # arrays are replaced, never mutated, by learning
         return self._pad(leading, BatchResult(transitions, shift_sigma, coords, residual_norm,
                                               fit.n_iter, fit.converged, units))
@@ -333,23 +333,25 @@ class EntityDetector:
             shift[support] = coef_rows / scales
         # Active: selected by the LASSO and still clear of the hysteresis bar after the refit (a
         # refit can shrink one of several correlated selections to almost nothing).
-        active = np.zeros((B, p), dtype=bool)
-        active[support] = (coef_lasso[support] != 0) & (np.abs(shift[support]) >= self.config.decision.clear_sigma)
-        cols = np.flatnonzero((active[support].any(axis=0) & scored) | (self.tracker.state != QUIET))
+        support_active = (coef_lasso[support] != 0) & (np.abs(shift[support]) >= self.config.decision.clear_sigma)
+        cols = ((support_active.any(axis=0) & scored) | (self.tracker.state != QUIET)).nonzero()[0]
+        if cols.size == 0:   # the common case: every column quiet and staying so
+            self.tracker.idle(B)
+            return []
+        active = np.zeros((B, cols.size), dtype=bool)
+        active[support] = support_active[:, cols] & scored[cols]
         correlation = residual[:, cols] if phi is None else residual @ phi[:, cols]
         stat = (coef_lasso[:, cols] + correlation) / scales[cols]
+        metric_cols = cols[cols < n]   # cols are sorted: metrics first, then groups (no value)
+        k = metric_cols.size
         value = np.full((B, cols.size), np.nan)
         expected = np.full((B, cols.size), np.nan)
-        is_metric = cols < n
-        metric_cols = cols[is_metric]
-        value[:, is_metric] = X[:, metric_cols]
-        expected[:, is_metric] = self.normaliser.inverse_columns(coords @ self.baseline.U[metric_cols].T,
-                                                                 metric_cols)
-        return self.tracker.step(active[:, cols] & scored[cols], shift[:, cols], stat, value, expected, ts,
-                                 columns=cols)
+        value[:, :k] = X[:, metric_cols]
+        expected[:, :k] = self.normaliser.inverse_columns(coords @ self.baseline.U[metric_cols].T, metric_cols)
+        return self.tracker.step(active, shift[:, cols], stat, value, expected, ts, columns=cols)
 
     def _learn(self, cleaned: np.ndarray, present: np.ndarray, mask: np.ndarray | None, effect: np.ndarray,
-               coords: np.ndarray, residual: np.ndarray, support: np.ndarray, selected: np.ndarray,
+               coords: np.ndarray, squares: np.ndarray, support: np.ndarray, selected: np.ndarray,
                transitions: list[Transition]) -> None:
         if mask is None:
             self.baseline.update(cleaned)
@@ -358,7 +360,7 @@ class EntityDetector:
             # skipped (they would only pull the basis towards its own guess).
             complete = np.where(mask, cleaned, coords @ self.baseline.U.T)
             self.baseline.update(complete[mask.mean(axis=1) >= 0.5])
-        self._update_residual_scale(residual, mask, support, selected)
+        self._update_residual_scale(squares, mask, support, selected)
         self.normaliser.update(cleaned, present)
         for t in transitions:
             if t.kind == "adapted":   # the shift becomes the new normal, for a group on all its members
@@ -408,28 +410,28 @@ class EntityDetector:
         self.residual_scale[ready] = typical
         self.admitted[ready] = True
 
-    def _update_residual_scale(self, residual: np.ndarray, mask: np.ndarray | None, support: np.ndarray,
+    def _update_residual_scale(self, squares: np.ndarray, mask: np.ndarray | None, support: np.ndarray,
                                selected: np.ndarray) -> None:
-        """Exponentially weighted mean square of the residual over the observed entries the LASSO
-        did not select, divided by the second moment of a standard normal truncated at ``lambda``.
+        """Exponentially weighted mean square of the residual (``squares`` (B, n), 0 where unobserved)
+        over the observed entries the LASSO did not select, divided by the second moment of a
+        standard normal truncated at ``lambda``.
 
         Selected entries carry no information on the noise (their residual is pinned at
         ``lambda d`` by the optimality conditions) and would inflate ``d`` during a long shift,
-        desensitising the metric just when it matters.  They sit in the few ``support`` rows,
-        so they are subtracted from the full sums rather than masked out of them.
+        desensitising the metric just when it matters.  They sit in the few ``support`` rows
+        (``selected`` holds those rows), so they are subtracted from the full sums rather than
+        masked out of them.
         """
-        B = residual.shape[0]
+        B = squares.shape[0]
         decay = self._scale_decay
         weights = (1.0 - decay) * decay ** np.arange(B - 1, -1, -1)
-        squares = residual * residual           # zero at unobserved entries
         moment = weights @ squares
-        used_weight = np.full(residual.shape[1], weights.sum()) if mask is None else weights @ mask
-        used = np.full(residual.shape[1], B) if mask is None else mask.sum(axis=0)
+        used_weight = weights.sum() if mask is None else weights @ mask   # per metric (or all alike)
+        used = B if mask is None else mask.sum(axis=0)
         if support.size:
-            sel = selected[support]
-            moment -= weights[support] @ np.where(sel, squares[support], 0.0)
-            used_weight = used_weight - weights[support] @ sel
-            used = used - sel.sum(axis=0)
+            moment -= weights[support] @ np.where(selected, squares[support], 0.0)
+            used_weight = used_weight - weights[support] @ selected
+            used = used - selected.sum(axis=0)
         kept = decay ** used
         total = used_weight + kept
         variance = (kept * self.residual_scale ** 2 + moment / self._truncated_moment) / total

@@ -215,15 +215,57 @@ def _prepare(Z, U, phi, mask, check: bool = True) -> _Problem:
     return _Problem(Z=Z, U=U, phi=phi, m=m, ginv=ginv, col_ok=col_ok)
 
 
-def _batch_rows(x, name: str, B: int, p: int, *, allow_inf: bool = False) -> np.ndarray:
-    """Validate a (p,) or (B, p) array and return it as (B, p) (a fresh copy)."""
+def _check_rows(x, name: str, B: int, p: int, *, allow_inf: bool = False, check: bool = True) -> np.ndarray:
+    """Validate a (p,) or (B, p) array (values only if ``check``) and return it as an array."""
     a = _as_float_array(x, name, (1, 2))
     if a.shape not in ((p,), (B, p)):
         raise ValueError(f"{name} must have shape ({p},) or ({B}, {p}), got {a.shape}")
-    bad = np.isnan(a) if allow_inf else ~np.isfinite(a)
-    if bad.any():
+    if check and (np.isnan(a) if allow_inf else ~np.isfinite(a)).any():
         raise ValueError(f"{name} contains {'NaN' if allow_inf else 'NaN or infinite'} values")
-    return np.array(np.broadcast_to(a, (B, p)))
+    return a
+
+
+def _batch_rows(x, name: str, B: int, p: int, *, allow_inf: bool = False, check: bool = True) -> np.ndarray:
+    """:func:`_check_rows`, returned as (B, p) (a fresh copy)."""
+    out = np.empty((B, p))
+    out[...] = _check_rows(x, name, B, p, allow_inf=allow_inf, check=check)
+    return out
+
+
+def _check_settings(tol, max_iter, lipschitz) -> None:
+    """Validate the solver's scalar settings (``lipschitz`` None = the default)."""
+    if isinstance(tol, bool) or not isinstance(tol, Real) or not (np.isfinite(tol) and tol > 0):
+        raise ValueError(f"tol must be a positive finite number, got {tol!r}")
+    if isinstance(max_iter, bool) or not isinstance(max_iter, Integral) or max_iter < 1:
+        raise ValueError(f"max_iter must be an integer >= 1, got {max_iter!r}")
+    if lipschitz is not None and (isinstance(lipschitz, bool) or not isinstance(lipschitz, Real)
+                                  or not (np.isfinite(lipschitz) and lipschitz > 0)):
+        raise ValueError(f"lipschitz must be a positive finite number, got {lipschitz!r}")
+
+
+def _penalty_terms(pen: np.ndarray, col_ok: np.ndarray | None):
+    """``(pen, pen_fin, inv_pen, zero_pen, frozen)`` for a validated penalty array (modified in place).
+
+    Frozen coefficients (infinite penalty, or no observed support) get penalty ``inf``,
+    ``pen_fin`` 0 and ``inv_pen`` 0 (no dual constraint); ``zero_pen`` marks penalties 0
+    (``inv_pen`` 0, see :func:`_dual_norm`). ``zero_pen`` and ``frozen`` are None when empty.
+    """
+    frozen = np.isinf(pen)
+    if col_ok is not None:
+        frozen |= ~col_ok
+    if frozen.any():
+        pen[frozen] = np.inf
+        pen_fin = np.where(frozen, 0.0, pen)
+    else:
+        frozen, pen_fin = None, pen
+    zero_pen = pen == 0
+    if zero_pen.any():
+        with np.errstate(divide="ignore"):
+            inv_pen = 1.0 / pen   # 1 / inf = 0 at frozen columns
+        inv_pen[zero_pen] = 0.0
+    else:
+        zero_pen, inv_pen = None, 1.0 / pen
+    return pen, pen_fin, inv_pen, zero_pen, frozen
 
 
 def _rows(a: np.ndarray | None, idx: np.ndarray) -> np.ndarray | None:
@@ -250,7 +292,7 @@ def _check_coef(S, prob: _Problem) -> np.ndarray:
 
 def _dual_norm(C, inv_pen, zero_pen):
     """max_j |C_j| / penalty_j per row: the residual is dual feasible iff this is <= 1."""
-    dnorm = np.max(np.abs(C) * inv_pen, axis=1, initial=0.0)
+    dnorm = np.maximum.reduce(np.abs(C) * inv_pen, axis=1, initial=0.0)
     if zero_pen is not None:
         # penalty 0: the dual constraint is C_j = 0 exactly.
         dnorm = np.where(np.any(zero_pen & (C != 0), axis=1), np.inf, dnorm)
@@ -259,8 +301,7 @@ def _dual_norm(C, inv_pen, zero_pen):
 
 def _dual_value(R, Y, rr, dnorm):
     """Dual objective at theta = a R, a = min(1, 1/dnorm), the standard feasible rescaling."""
-    with np.errstate(divide="ignore"):
-        a = np.minimum(1.0, 1.0 / dnorm)
+    a = 1.0 / np.maximum(dnorm, 1.0)   # = min(1, 1/dnorm), with no division by 0
     return a * np.einsum("ij,ij->i", R, Y) - 0.5 * a * a * rr
 
 
@@ -294,6 +335,7 @@ def solve_projected_lasso(
     tol: float = 1e-6,
     max_iter: int = 500,
     lipschitz: float | None = None,
+    check_input: bool = True,
 ) -> LassoResult:
     """Solve the projected LASSO for every row of Z with warm-started FISTA.
 
@@ -305,7 +347,10 @@ def solve_projected_lasso(
     relative duality-gap tolerance: a sample stops when
     ``gap <= tol * ||P_b z_b||^2`` (scikit-learn's rule); ``max_iter`` cap
     on FISTA iterations; ``lipschitz`` step-size constant, default
-    ``||phi||_2^2`` (1 for phi None).
+    ``||phi||_2^2`` (1 for phi None); ``check_input=False`` keeps the shape
+    checks but skips the value checks (finite data, orthonormal ``U``,
+    non-negative penalty, the settings), for callers that guarantee them
+    (scikit-learn's ``check_input``).
 
     Coefficients of columns with no observed support in a sample are exactly
     0. The returned ``coef`` is the best iterate seen (never worse in
@@ -323,46 +368,30 @@ def solve_projected_lasso(
     >>> res.n_iter[1], bool(res.converged.all())
     (np.int64(0), True)
     """
-    prob = _prepare(Z, U, phi, mask)
+    prob = _prepare(Z, U, phi, mask, check=check_input)
     B, p = prob.Z.shape[0], prob.p
-
-    if isinstance(tol, bool) or not isinstance(tol, Real) or not (np.isfinite(tol) and tol > 0):
-        raise ValueError(f"tol must be a positive finite number, got {tol!r}")
-    if isinstance(max_iter, bool) or not isinstance(max_iter, Integral) or max_iter < 1:
-        raise ValueError(f"max_iter must be an integer >= 1, got {max_iter!r}")
+    if check_input:
+        _check_settings(tol, max_iter, lipschitz)
     if lipschitz is None:
         L = 1.0 if prob.phi is None else float(np.linalg.norm(prob.phi, 2) ** 2)
     else:
-        if isinstance(lipschitz, bool) or not isinstance(lipschitz, Real) or not (
-            np.isfinite(lipschitz) and lipschitz > 0
-        ):
-            raise ValueError(f"lipschitz must be a positive finite number, got {lipschitz!r}")
         L = float(lipschitz)
 
     # Penalty-derived arrays are (B, p), or (1, p) when every sample shares them
     # (1-D penalty, nothing unobserved): the common case then costs no (B, p) passes.
     shared = np.ndim(penalty) == 1 and prob.col_ok is None
-    pen = _batch_rows(penalty, "penalty", 1 if shared else B, p, allow_inf=True)
-    if np.any(pen < 0):
+    pen = _batch_rows(penalty, "penalty", 1 if shared else B, p, allow_inf=True, check=check_input)
+    if check_input and np.any(pen < 0):
         raise ValueError("penalty must be non-negative")
-    frozen = np.isinf(pen)
-    if prob.col_ok is not None:
-        frozen |= ~prob.col_ok
-    pen[frozen] = np.inf
-    pen_fin = np.where(frozen, 0.0, pen)
-    with np.errstate(divide="ignore"):
-        inv_pen = np.where(frozen, 0.0, 1.0 / pen)  # inf where penalty is 0
-    zero_pen = (pen == 0) if np.any(pen == 0) else None
-    if zero_pen is not None:
-        inv_pen[zero_pen] = 0.0
+    pen, pen_fin, inv_pen, zero_pen, frozen = _penalty_terms(pen, prob.col_ok)
 
     if init is None or (np.ndim(init) == 1 and not np.any(init)):   # cold, or an all-zero warm start
         if init is not None:
-            _batch_rows(init, "init", 1, p)   # still validated
+            _check_rows(init, "init", 1, p, check=check_input)   # still validated
         X = np.zeros((B, p))
     else:
-        X = _batch_rows(init, "init", B, p)
-        if frozen.any():
+        X = _batch_rows(init, "init", B, p, check=check_input)
+        if frozen is not None:
             X[np.broadcast_to(frozen, X.shape)] = 0.0
 
     # Before iterating: primal and dual values at two candidates, zero and
@@ -374,8 +403,7 @@ def solve_projected_lasso(
     yy = np.einsum("ij,ij->i", Y, Y)
     dnorm0 = _dual_norm(C0, inv_pen, zero_pen)
     p_best = 0.5 * yy
-    with np.errstate(divide="ignore"):
-        a0 = np.minimum(1.0, 1.0 / dnorm0)
+    a0 = 1.0 / np.maximum(dnorm0, 1.0)
     d_best = np.maximum(a0 * yy - 0.5 * a0 * a0 * yy, 0.0)  # dual at a0 * P z; theta = 0 is always feasible
     # Zero is accepted only when it is exactly optimal (|Phi^T P z| <= penalty everywhere):
     # a small relative gap would otherwise hide a coordinate just over its threshold, and the
@@ -383,7 +411,7 @@ def solve_projected_lasso(
     zero_exact = dnorm0 <= 1.0
     thresh = tol * yy
     R, C = Y, C0
-    warm = np.flatnonzero(np.any(X != 0, axis=1)) if init is not None else np.zeros(0, dtype=np.int64)
+    warm = X.any(axis=1).nonzero()[0] if init is not None else np.zeros(0, dtype=np.int64)
     started = np.zeros(B, dtype=bool)   # rows that iterate from their warm start rather than zero
     if warm.size:
         m, ginv = prob.rows(warm)
@@ -407,19 +435,25 @@ def solve_projected_lasso(
     converged = (gap <= thresh) & (zero_exact | started)
     n_iter = np.zeros(B, dtype=np.int64)
 
-    act = np.flatnonzero(~converged)
+    # Rows that iterate or started warm: the only ones that can end with a support.
+    touched = (~converged | started).nonzero()[0]
+    act = (~converged).nonzero()[0]
     if act.size:
         _fista(prob, act, X[act], R[act], C[act], Y[act], _rows(pen, act), _rows(pen_fin, act),
                _rows(inv_pen, act), _rows(zero_pen, act), thresh[act], p_best[act], d_best[act],
                L, max_iter, coef, gap, converged, n_iter)
     # Residual and coordinates: those at zero (Y, W0, no longer needed as such) except in the
-    # rows that ended with a support, which only rows that iterated or started warm can have.
-    touched = np.union1d(act, np.flatnonzero(started))
-    moved = touched[np.any(coef[touched] != 0, axis=1)]
+    # rows that ended with a support.
+    moved = touched[coef[touched].any(axis=1)]
     if moved.size:
         m, ginv = prob.rows(moved)
         Y[moved], W0[moved] = _project(prob.Z[moved] - prob.phi_mul(coef[moved]), prob.U, m, ginv)
     return LassoResult(coef=coef, n_iter=n_iter, gap=gap, converged=converged, residual=Y, coords=W0)
+
+
+def _soft_threshold(G: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """``G - clip(G, lo, hi)``: shrinks towards 0 by the thresholds (an infinite one gives exactly 0)."""
+    return G - np.minimum(np.maximum(G, lo), hi)
 
 
 def _fista(prob, act, X, R, C, Y, pen, pen_fin, inv_pen, zero_pen, thresh, p_best, d_best,
@@ -436,16 +470,21 @@ def _fista(prob, act, X, R, C, Y, pen, pen_fin, inv_pen, zero_pen, thresh, p_bes
     Xb = X.copy()  # best iterate so far (primal value p_best)
     Xp, Cp = X, C
     thr = pen / L
+    neg_thr = -thr
     t = np.ones(act.size)
     for k in range(1, max_iter + 1):
         t_next = 0.5 * (1.0 + np.sqrt(1.0 + 4.0 * t * t))
-        beta = ((t - 1.0) / t_next)[:, None]
-        V = X + beta * (X - Xp)
-        G = V + (C + beta * (C - Cp)) / L  # gradient step from y_k
-        Xn = G - np.clip(G, -thr, thr)  # soft-threshold (inf threshold -> exactly 0)
-        # Adaptive restart, gradient scheme (O'Donoghue & Candes 2015): drop
-        # the momentum of a sample whose step opposes its extrapolation.
-        t = np.where(np.einsum("ij,ij->i", V - Xn, Xn - X) > 0, 1.0, t_next)
+        if k == 1:   # t = 1, beta = 0: a plain gradient step from x_1, which never restarts
+            Xn = _soft_threshold(X + C / L, neg_thr, thr)
+            t = t_next
+        else:
+            beta = ((t - 1.0) / t_next)[:, None]
+            V = X + beta * (X - Xp)
+            G = V + (C + beta * (C - Cp)) / L  # gradient step from y_k
+            Xn = _soft_threshold(G, neg_thr, thr)
+            # Adaptive restart, gradient scheme (O'Donoghue & Candes 2015): drop
+            # the momentum of a sample whose step opposes its extrapolation.
+            t = np.where(np.einsum("ij,ij->i", V - Xn, Xn - X) > 0, 1.0, t_next)
         R, _ = _project(Za - prob.phi_mul(Xn), prob.U, m, ginv)
         Xp, Cp, X, C = X, C, Xn, prob.phi_t(R)
 
@@ -473,8 +512,8 @@ def _fista(prob, act, X, R, C, Y, pen, pen_fin, inv_pen, zero_pen, thresh, p_bes
         act = act[keep]
         X, Xp, C, Cp, Xb = X[keep], Xp[keep], C[keep], Cp[keep], Xb[keep]
         Za, Y, thresh = Za[keep], Y[keep], thresh[keep]
-        pen, thr, pen_fin, inv_pen = _rows(pen, keep), _rows(thr, keep), _rows(pen_fin, keep), _rows(inv_pen, keep)
-        zero_pen = _rows(zero_pen, keep)
+        thr, neg_thr, pen_fin = _rows(thr, keep), _rows(neg_thr, keep), _rows(pen_fin, keep)
+        inv_pen, zero_pen = _rows(inv_pen, keep), _rows(zero_pen, keep)
         p_best, d_best, t = p_best[keep], d_best[keep], t[keep]
         if m is not None:
             m, ginv = m[keep], ginv[keep]
@@ -549,10 +588,14 @@ def refit_solution(
     them (every other row is unchanged: zero coefficients, the result's
     coordinates). Pass the same ``Z``/``U``/``phi``/``mask`` as to the solver;
     ``check_input=False`` skips re-validating them (as scikit-learn's
-    ``check_input``), for callers that just did.
+    ``check_input``), for callers that just did. Only the rows with a support
+    are read (and validated): with a mask, their projectors are all that is built.
     """
-    prob = _prepare(Z, U, phi, mask, check=check_input)
-    return _refit(prob, result.coef, result.residual, result.coords)
+    rows = result.coef.any(axis=1).nonzero()[0]
+    prob = _prepare(np.asarray(Z)[rows], U, phi, None if mask is None else np.asarray(mask)[rows],
+                    check=check_input)
+    _, coef, coords = _refit(prob, result.coef[rows], result.residual[rows], result.coords[rows])
+    return rows, coef, coords
 
 
 def _solve_normal_equations(gram: np.ndarray, rhs: np.ndarray, *, identity_dictionary: bool) -> np.ndarray:
@@ -578,7 +621,7 @@ def _refit(prob: _Problem, S: np.ndarray, R: np.ndarray,
     equations read ``(Phi_S^T P Phi_S) s~ = Phi_S^T P z = (Phi_S^T P Phi_S) s_S + Phi_S^T R``,
     so neither ``P z`` nor anything else of size n per sample is recomputed.
     """
-    rows = np.flatnonzero(np.any(S != 0, axis=1))
+    rows = S.any(axis=1).nonzero()[0]
     if rows.size == 0:
         return rows, np.zeros((0, S.shape[1])), np.zeros((0, W.shape[1]))
     out, coords = S[rows], W[rows]
@@ -587,30 +630,31 @@ def _refit(prob: _Problem, S: np.ndarray, R: np.ndarray,
     r_idx, c_idx = np.nonzero(S[rows])  # row-major: each row's support columns in order
     sizes = np.bincount(r_idx, minlength=rows.size)
     k = int(sizes.max())
-    slot = np.arange(r_idx.size) - np.repeat(np.cumsum(sizes) - sizes, sizes)
-    slots = np.zeros((rows.size, k), dtype=np.int64)
-    slots[r_idx, slot] = c_idx
+    slot = np.arange(r_idx.size) - (np.cumsum(sizes) - sizes)[r_idx]
     valid = np.zeros((rows.size, k), dtype=bool)  # False = padding
     valid[r_idx, slot] = True
     m, ginv = prob.rows(rows)
-    current = np.take_along_axis(S[rows], slots, axis=1) * valid
+    current = np.zeros((rows.size, k))   # s on the support slots, 0 in the pads
+    current[r_idx, slot] = out[r_idx, c_idx]
     if prob.phi is None:
         # Phi_S are unit vectors: Phi_S^T P_b Phi_S = I - U_S G_b^+ U_S^T (support rows of U,
         # all observed) and Phi_S^T R = R_S.
-        US = prob.U[slots] * valid[:, :, None]  # (B', k, r)
+        US = np.zeros((rows.size, k, prob.U.shape[1]))  # (B', k, r), 0 in the pads
+        US[r_idx, slot] = prob.U[c_idx]
         inner = US if ginv is None else np.einsum("bkr,brs->bks", US, ginv)
         gram = np.eye(k) - inner @ US.transpose(0, 2, 1)
-        corr = np.take_along_axis(R[rows], slots, axis=1) * valid
+        corr = np.zeros((rows.size, k))
+        corr[r_idx, slot] = R[rows[r_idx], c_idx]
     else:
-        cols = prob.phi.T[slots] * valid[:, :, None]  # (B', k, n): phi_j per support slot
+        cols = np.zeros((rows.size, k, prob.phi.shape[0]))  # (B', k, n): phi_j per support slot, 0 in the pads
+        cols[r_idx, slot] = prob.phi.T[c_idx]
         A, _ = _project(cols, prob.U, None if m is None else m[:, None, :],
                         None if ginv is None else ginv[:, None, :, :])  # rows: P_b phi_j
         gram = A @ A.transpose(0, 2, 1)
         corr = np.einsum("bkn,bn->bk", cols, R[rows])
     rhs = np.einsum("bij,bj->bi", gram, current) + corr
-    pads = ~valid
-    gram[pads[:, :, None] | pads[:, None, :]] = 0.0
-    gram[pads[:, :, None] & np.eye(k, dtype=bool)] = 1.0
+    pad_row, pad_slot = np.nonzero(~valid)   # pads: rows and columns of gram 0 off the diagonal,
+    gram[pad_row, pad_slot, pad_slot] = 1.0    # and an identity block on it makes them harmless
     if k == 1:   # the common case: one coefficient per row
         g = gram[:, 0, 0]
         coef = np.where(g > _GRAM_RTOL, rhs[:, 0] / np.where(g > 0, g, 1.0), 0.0)[:, None]
@@ -622,7 +666,7 @@ def _refit(prob: _Problem, S: np.ndarray, R: np.ndarray,
     delta = coef - current
     if prob.U.shape[1]:
         if prob.phi is None:
-            shift = np.einsum("bk,bkr->br", delta, prob.U[slots])
+            shift = np.einsum("bk,bkr->br", delta, US)
         else:
             moved = np.einsum("bk,bkn->bn", delta, cols)
             shift = (moved if m is None else moved * m) @ prob.U

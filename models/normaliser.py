@@ -137,7 +137,10 @@ class RobustNormaliser:
 
     def transform(self, X: np.ndarray) -> np.ndarray:
         """Normalised values (B, n); missing stays NaN."""
-        return (self._forward(X) - self.loc) / self.scale
+        F = self._forward(X)   # a fresh array: normalised in place
+        F -= self.loc
+        F /= self.scale
+        return F
 
     def inverse(self, Z: np.ndarray) -> np.ndarray:
         """Map normalised values back to the metrics' own units."""
@@ -166,19 +169,29 @@ class RobustNormaliser:
         if B == 0:
             return
         settled = self.count >= self.settle
-        seen_now = observed.sum(axis=0)
-        z = np.where(observed, Z_clean, 0.0)
-        np.clip(z, -5.0, 5.0, out=z, where=settled)
+        all_settled = settled.all()
         # Exponential weights (1 - decay) decay^(B-1-j) for sample j (0 = oldest); products with
         # them are matrix-vector products, and the old estimate keeps decay^(samples seen).
         decay_w = (1.0 - self.decay) * self.decay ** np.arange(B - 1, -1, -1)
+        if observed.all():   # the usual case: the sums need no mask
+            seen_now = np.full(self.n_metrics, B)
+            z = np.array(Z_clean, dtype=float)
+            observed_w = decay_w.sum()
+        else:
+            seen_now = observed.sum(axis=0)
+            z = np.where(observed, Z_clean, 0.0)
+            observed_w = decay_w @ observed
+        if all_settled:   # a where= mask makes clip several times slower
+            np.clip(z, -5.0, 5.0, out=z)
+        else:
+            np.clip(z, -5.0, 5.0, out=z, where=settled)
         ew_kept = self.decay ** seen_now
         seen = self.count + seen_now
         filling = seen < 1.0 / (1.0 - self.decay)
         w_fill = 1.0 / np.maximum(seen, 1)
-        shift = np.where(filling, z.sum(axis=0) * w_fill, (decay_w @ z) / (decay_w @ observed + ew_kept))
+        shift = np.where(filling, z.sum(axis=0) * w_fill, (decay_w @ z) / (observed_w + ew_kept))
         scale = self.scale.copy()
-        if not settled.all():
+        if not all_settled:
             fresh = np.flatnonzero(~settled)
             dev = (np.abs(z[:, fresh] - shift[fresh]) * observed[:, fresh]).sum(axis=0) * w_fill[fresh]
             kept = self.count[fresh] * w_fill[fresh]

@@ -19,6 +19,7 @@ do not rotate the basis.
 from __future__ import annotations
 
 import numpy as np
+from scipy.linalg import lapack
 
 from .normaliser import decay_for_halflife
 
@@ -64,6 +65,25 @@ def impute_low_rank(Z: np.ndarray, rank: int, *, n_iter: int = 10) -> np.ndarray
         approx = (left[:, :rank] * sv[:rank]) @ right[:rank]
         filled = np.where(missing, approx, filled)
     return filled
+
+
+# The per-batch factorisations are of an n x r and an r x r matrix: numpy.linalg's wrappers cost
+# several times the work itself there, so LAPACK is called directly (the same routines numpy
+# calls, with the same results: Householder QR, divide-and-conquer symmetric eigensolver).
+
+
+def _orthonormal_basis(A: np.ndarray) -> np.ndarray:
+    """Q of the thin QR of ``A`` (n, r), n >= r: ``numpy.linalg.qr(A)[0]``."""
+    qr, tau, _, _ = lapack.dgeqrf(A)
+    return lapack.dorgqr(qr, tau, overwrite_a=True)[0]
+
+
+def _symmetric_eigen(S: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Ascending eigenvalues and eigenvectors of the symmetric ``S``: ``numpy.linalg.eigh(S)``."""
+    values, vectors, info = lapack.dsyevd(S, lower=1)   # numpy reads the lower triangle
+    if info > 0:
+        raise np.linalg.LinAlgError("Eigenvalues did not converge")
+    return values, vectors
 
 
 class SubspaceTracker:
@@ -141,14 +161,12 @@ class SubspaceTracker:
         old = self.U * (self.singular_values * np.sqrt(self.decay ** B))  # (n, r) factor of the old moment
         # Apply the moment Y Y^T, Y = [old, diag(sqrt(weights)) C]^T, to U once, then orthonormalise.
         applied = old @ (old.T @ self.U) + C.T @ (weights * (C @ self.U))
-        Q, _ = np.linalg.qr(applied)
+        Q = _orthonormal_basis(applied)
         # Rayleigh-Ritz: principal directions of Y inside span(Q), from the r x r matrix Q^T Y Y^T Q.
         OQ, CQ = old.T @ Q, C @ Q
-        small = OQ.T @ OQ + CQ.T @ (weights * CQ)
-        values, vectors = np.linalg.eigh(small)
-        order = np.argsort(values)[::-1]
-        self.U = Q @ vectors[:, order]
-        self.singular_values = np.sqrt(np.maximum(values[order], 0.0))
+        values, vectors = _symmetric_eigen(OQ.T @ OQ + CQ.T @ (weights * CQ))
+        self.U = Q @ vectors[:, ::-1]   # eigenvalues come ascending
+        self.singular_values = np.sqrt(np.maximum(values[::-1], 0.0))
 
     def extend(self, k: int) -> None:
         """Add ``k`` metrics with zero loadings (the basis stays orthonormal); updates then learn them."""

@@ -1,14 +1,16 @@
 """Model-path benchmark: vectors/s through one entity's full detector.
 
-Run:  python tests/benchmarks/bench_model.py [--quick] [--batch B]
+Run:  python tests/benchmarks/bench_model.py [--quick] [--batch B] [--per-call]
 
 For n in {50, 200, 1000} metrics (rank-8 shared movement plus noise, a few
 persistent shifts), it times ``EntityDetector.process`` over micro-batches
 after warm-up — normalise, projected LASSO, debias, decide, learn — and
 prints vectors/s and microseconds per vector, plus the share of vectors the
-solver finished without iterating.  Single process, single thread of numpy
-work dominates (set OPENBLAS_NUM_THREADS=1 to pin it to one core).  Figures
-only; nothing is asserted about speed.
+solver finished without iterating.  ``--per-call`` adds the cost of one
+``process`` call at n = 200 for the small micro-batches a live service sees
+(1, 8, 64, 256 vectors), where the fixed per-call cost dominates.  Single
+process, single thread of numpy work dominates (set OPENBLAS_NUM_THREADS=1 to
+pin it to one core).  Figures only; nothing is asserted about speed.
 """
 
 from __future__ import annotations
@@ -55,6 +57,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--quick", action="store_true", help="tiny run (smoke test)")
     parser.add_argument("--batch", type=int, default=256, help="vectors per micro-batch")
     parser.add_argument("--repeat", type=int, default=5, help="runs per size; best and median are printed")
+    parser.add_argument("--per-call", action="store_true", help="also ms per process() call at n = 200, B = 1..256")
     args = parser.parse_args(argv)
     batches, repeat = (2, 1) if args.quick else (40, args.repeat)
     print(f"model path, rank 8, micro-batch {args.batch}, default detector settings, "
@@ -66,6 +69,12 @@ def main(argv: list[str] | None = None) -> int:
         rates = sorted(m["rate"] for m in runs)
         print(f"{n:6d} {rates[-1]:12,.0f} {rates[len(rates) // 2]:13,.0f} {1e6 / rates[-1]:12.1f} "
               f"{runs[0]['zero_iteration_share']:11.0%}")
+    if args.per_call:
+        print(f"\nper process() call at n = 200 ({repeat} run(s), best)\n{'batch':>6s} {'ms/call':>9s} {'vec/s':>10s}")
+        for batch in (1, 8, 64, 256):
+            calls = batches if args.quick else max(batches, 2560 // batch)
+            best = min(measure(200, batch, calls)["seconds"] for _ in range(repeat)) / calls
+            print(f"{batch:6d} {1e3 * best:9.3f} {batch / best:10,.0f}")
     return 0
 
 
