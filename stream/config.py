@@ -186,6 +186,10 @@ SCHEMA: tuple[Setting, ...] = (
     Setting("kafka", "ssl_keyfile", str, "", "a file path or empty", lambda v: True, "client key for TLS"),
     Setting("kafka", "session_timeout_ms", int, 10_000, "an integer in 1000..300000", _range(1000, 300_000),
             "consumer-group session timeout: how fast a dead member's partitions move"),
+    Setting("kafka", "fetch_partition_bytes", int, 8 << 20, "an integer in 65536..268435456",
+            _range(1 << 16, 1 << 28),
+            "most bytes one fetch returns per partition (at least one message is always returned): "
+            "bigger fetches mean fewer round trips when behind, at that much memory per assigned partition"),
     Setting("kafka", "alert_topic", str, "", "a topic name (1-249 of A-Z a-z 0-9 . _ -) or empty",
             _kafka_topic_or_empty, "topic for alert events (empty = none)"),
     Setting("kafka", "dead_letter_topic", str, "", "a topic name (1-249 of A-Z a-z 0-9 . _ -) or empty",

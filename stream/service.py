@@ -123,7 +123,8 @@ def kafka_settings(config: Config, url: str) -> "KafkaSettings":
                          sasl_username=k.sasl_username or None, sasl_password=password or None,
                          ssl_cafile=k.ssl_cafile or None, ssl_certfile=k.ssl_certfile or None,
                          ssl_keyfile=k.ssl_keyfile or None, session_timeout_ms=k.session_timeout_ms,
-                         max_message_bytes=config.input.max_message_bytes)
+                         max_message_bytes=config.input.max_message_bytes,
+                         fetch_partition_bytes=k.fetch_partition_bytes)
 
 
 class KafkaInput:

@@ -373,7 +373,7 @@ def test_settings_repr_hides_password_and_kwargs_pass_security_through():
                         sasl_username="svc", sasl_password="hunter2-s3cret",
                         ssl_cafile="/etc/ca.pem", ssl_certfile="/etc/c.pem", ssl_keyfile="/etc/k.pem",
                         api_version=(2, 5, 0), session_timeout_ms=6000, max_poll_records=500,
-                        max_message_bytes=4 << 20)
+                        max_message_bytes=16 << 20)
     assert "hunter2" not in repr(cfg) and "hunter2" not in str(cfg) and "'***'" in repr(cfg)
     assert "svc" in repr(cfg)
     ck = cfg.consumer_kwargs()
@@ -387,8 +387,9 @@ def test_settings_repr_hides_password_and_kwargs_pass_security_through():
         assert kw["api_version"] == (2, 5)  # kafka-python's spelling of 2.5.0
     assert ck["group_id"] == "g" and ck["enable_auto_commit"] is False
     assert ck["session_timeout_ms"] == 6000 and ck["heartbeat_interval_ms"] < 6000
-    assert ck["max_poll_records"] == 500 and ck["max_partition_fetch_bytes"] == 4 << 20
-    assert pk["max_request_size"] == 4 << 20
+    # a fetch is never smaller than the largest message allowed (kafka.fetch_partition_bytes is 8 MiB)
+    assert ck["max_poll_records"] == 500 and ck["max_partition_fetch_bytes"] == 16 << 20
+    assert pk["max_request_size"] == 16 << 20
     # the kwargs are accepted by kafka-python as they are
     assert set(ck) <= set(KafkaConsumer.DEFAULT_CONFIG) and set(pk) <= set(KafkaProducer.DEFAULT_CONFIG)
 

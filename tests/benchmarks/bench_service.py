@@ -11,8 +11,8 @@ on that broker and one 1-partition topic:
      values from a fixed-seed rank-8-plus-noise generator); prints the produce
      rate (sends + final flush; generating the JSON is not timed);
   2. reads them back with a plain kafka-python ``KafkaConsumer`` (own group,
-     earliest, no auto-commit, max_poll_records 2000, otherwise kafka-python's
-     defaults): the bare consume rate;
+     earliest, no auto-commit, max_poll_records 2000 and the service's fetch
+     sizes, kafka.fetch_partition_bytes and fetch_max_wait_ms): the bare consume rate;
   3. runs the real ``Service`` in a thread (defaults: model.warmup 540,
      engine.batch_size 64, http.poll_seconds 0.5; kafka.api_version 2.5.0)
      until it has processed all N: vectors/s, its ratio to the bare rate, the
@@ -169,7 +169,7 @@ def run(args: argparse.Namespace, port: int) -> dict:
     from kafka.admin import NewTopic
 
     from shiftsieve.stream.config import load_config
-    from shiftsieve.stream.service import Service
+    from shiftsieve.stream.service import Service, kafka_settings
 
     N, M, E = args.vectors, args.latency_messages, args.entities
     topic = "bench-vectors"
@@ -202,10 +202,12 @@ def run(args: argparse.Namespace, port: int) -> dict:
 
     # 2. bare consume
     # session_timeout_ms 6000: with kafka-python's 10000 the join takes ~15 s on Tansu (~3 s with this); the
-    # join is not timed, and the fetch settings (what the rate depends on) are the defaults the service uses too
+    # join is not timed; the fetch settings (what the rate depends on) are the ones the service uses
+    fetch = kafka_settings(load_config(None, {}), f"kafka://127.0.0.1:{port}/{topic}?group=bench-bare").consumer_kwargs()
     consumer = KafkaConsumer(topic, bootstrap_servers=f"127.0.0.1:{port}", api_version=API, group_id="bench-bare",
                              auto_offset_reset="earliest", enable_auto_commit=False, max_poll_records=2000,
-                             session_timeout_ms=6000)
+                             session_timeout_ms=6000, max_partition_fetch_bytes=fetch["max_partition_fetch_bytes"],
+                             fetch_max_wait_ms=fetch["fetch_max_wait_ms"])
     got, polls, t_first = 0, 0, None
     joined = time.perf_counter()
     deadline = time.monotonic() + 60 + N / 1000
