@@ -3,7 +3,8 @@
     shiftsieve demo [--scenario NAME]                 replay a bundled incident, print the alerts
     shiftsieve replay INPUT --events OUT.jsonl [--config FILE] [--dead-letter FILE]
     shiftsieve run [--config FILE] [--source URL] [--events FILE] [--listen HOST:PORT]
-    shiftsieve evaluate EVENTS LABELS [--vectors N] [--json]
+    shiftsieve evaluate INPUT LABELS [--config FILE] [--methods a,b,...] [--json]
+    shiftsieve evaluate --events EVENTS LABELS [--vectors N] [--json]
     shiftsieve config check [FILE]
 
 User mistakes (missing files, bad configuration, unusable input) end with a
@@ -37,7 +38,8 @@ def _parser() -> argparse.ArgumentParser:
     demo.add_argument("--events", metavar="FILE", help="also write the alert events as JSON lines")
     demo.add_argument("--config", metavar="FILE", help="TOML configuration")
 
-    rep = sub.add_parser("replay", help="run a recorded .jsonl, .jsonl.gz or .csv file through the detector")
+    rep = sub.add_parser("replay", help="run a recorded .jsonl, .jsonl.gz, .csv(.gz) file or a Prometheus "
+                         "range-query export (.json, .json.gz) through the detector")
     rep.add_argument("input", metavar="INPUT")
     rep.add_argument("--events", metavar="OUT.jsonl", required=True, help="alert events, one JSON per line")
     rep.add_argument("--config", metavar="FILE", help="TOML configuration")
@@ -53,10 +55,16 @@ def _parser() -> argparse.ArgumentParser:
                                                            "(default: http.listen, 127.0.0.1:9471)")
     run.add_argument("--dead-letter", metavar="FILE", help="write rejected messages here with a reason")
 
-    ev = sub.add_parser("evaluate", help="score alert events against a labels file")
-    ev.add_argument("events", metavar="EVENTS")
-    ev.add_argument("labels", metavar="LABELS")
-    ev.add_argument("--vectors", type=int, help="vectors in the replayed input (default: from the labels file)")
+    ev = sub.add_parser("evaluate", help="compare shiftsieve with baseline detectors on a labelled input "
+                                         "(or score an events file with --events)")
+    ev.add_argument("paths", nargs="+", metavar="INPUT LABELS",
+                    help="replay input and its labels file; with --events, only LABELS")
+    ev.add_argument("--events", metavar="EVENTS", help="score this alert-events file instead of running methods")
+    ev.add_argument("--config", metavar="FILE", help="TOML configuration")
+    ev.add_argument("--methods", metavar="a,b,...", help="methods to compare (default: all): "
+                    "shiftsieve, ewma_zscore, halfspacetrees, pcp")
+    ev.add_argument("--vectors", type=int, help="with --events: vectors in the replayed input "
+                                                "(default: from the labels file)")
     ev.add_argument("--json", action="store_true", help="print the figures as JSON")
 
     cfg = sub.add_parser("config", help="configuration tools")
@@ -64,6 +72,25 @@ def _parser() -> argparse.ArgumentParser:
     check = cfg_sub.add_parser("check", help="validate a TOML file and print the effective values")
     check.add_argument("file", nargs="?", metavar="FILE")
     return parser
+
+
+def _evaluate(args: argparse.Namespace) -> int:
+    from .compare import compare_methods, format_comparison, parse_methods
+    if args.events is not None:
+        if len(args.paths) != 1 or args.methods or args.config:
+            raise EvaluationError("evaluate --events takes EVENTS LABELS (no INPUT, --methods or --config)")
+        result = evaluate(load_events(args.events), load_labels(args.paths[0]), vectors=args.vectors)
+        print(orjson.dumps(result.to_dict(), option=orjson.OPT_INDENT_2).decode() if args.json
+              else format_table(result))
+        return 0
+    if len(args.paths) != 2 or args.vectors is not None:
+        raise EvaluationError("evaluate takes INPUT LABELS (or --events EVENTS LABELS; --vectors only with --events)")
+    methods = parse_methods(args.methods) if args.methods is not None else None
+    config, labels = load_config(args.config), load_labels(args.paths[1])
+    rows = compare_methods(args.paths[0], config, labels, methods=methods)
+    print(orjson.dumps([r.to_dict() for r in rows], option=orjson.OPT_INDENT_2).decode() if args.json
+          else format_comparison(rows))
+    return 0
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -100,11 +127,7 @@ def main(argv: list[str] | None = None) -> int:
             return Service(config, source_url=source, events_path=args.events,
                            dead_letter_path=args.dead_letter, listen=args.listen).run()
         if args.command == "evaluate":
-            labels = load_labels(args.labels)
-            result = evaluate(load_events(args.events), labels, vectors=args.vectors)
-            print(orjson.dumps(result.to_dict(), option=orjson.OPT_INDENT_2).decode() if args.json
-                  else format_table(result))
-            return 0
+            return _evaluate(args)
         if args.command == "config":
             print(render(load_config(args.file)), end="")
             return 0

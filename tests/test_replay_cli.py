@@ -92,7 +92,7 @@ def test_evaluate_command_on_a_replay(tmp_path, capsys):
     data = scenarios()["single_shift"]
     events = tmp_path / "e.jsonl"
     assert main(["replay", str(data), "--events", str(events), "--quiet"]) == 0
-    assert main(["evaluate", str(events), str(data.with_name("single_shift.labels.json")), "--json"]) == 0
+    assert main(["evaluate", "--events", str(events), str(data.with_name("single_shift.labels.json")), "--json"]) == 0
     report = json.loads(capsys.readouterr().out)
     assert report["recall"] == 1.0 and report["precision"] == 1.0
 

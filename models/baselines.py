@@ -1,0 +1,257 @@
+"""Reference detectors that ``shiftsieve evaluate`` compares shiftsieve with.
+
+Each turns one entity's matrix ``F`` (T, n) of metric values (already on the
+modelling scale: the caller applies ``model.log_metrics``; NaN = missing) into
+per-sample flags for the *same* decision layer shiftsieve uses
+(:class:`~shiftsieve.models.decision.AlertTracker`), with the same per-sample
+false-alarm target ``model.false_alarm`` and the same warm-up length, so the
+comparison is about the baseline model and nothing else:
+
+- :class:`EWMAZScore`: what most dashboards do, a per-metric exponentially
+  weighted mean and variance and a z-score against them;
+- :class:`HalfSpaceTreesDetector`: river's streaming ``HalfSpaceTrees``
+  (Tan, Ting, Liu 2011) on the whole vector; it says *that* a vector is odd,
+  not which metric, so it is scored at incident level only;
+- :func:`pcp_detect`: batch Principal Component Pursuit (Candes, Li, Ma,
+  Wright 2011) of the whole matrix, the offline low-rank-plus-sparse reference.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.special import ndtri
+
+from .detector import threshold_for, truncated_second_moment
+from .normaliser import MAD_TO_SIGMA, RobustNormaliser, column_median, decay_for_halflife
+from .pcp import PCPResult, principal_component_pursuit
+
+
+@dataclass(frozen=True)
+class Flags:
+    """Per-sample output of a reference detector, (T, k) arrays ready for ``AlertTracker.step``.
+
+    ``stat`` is signed and in (Gaussian-equivalent) sigmas: it is the decision layer's
+    shift and its clearing statistic; ``active`` is ``|stat| > threshold`` where scored;
+    ``expected`` is the detector's prediction on the input's scale (NaN if it has none).
+    """
+
+    active: np.ndarray
+    stat: np.ndarray
+    expected: np.ndarray
+
+
+class EWMAZScore:
+    """Per-metric exponentially weighted mean and variance, and the z-score against them.
+
+    The recursion is the standard incremental one (Finch 2009, "Incremental calculation
+    of weighted mean and variance"): ``d = x - m; m += a d; v = (1 - a) (v + a d^2)``
+    with ``a = max(1 - decay, 1 / count)``, i.e. the plain running mean and variance
+    while a metric has fewer samples than the average's effective length (the usual bias
+    adjustment, as in :class:`~shiftsieve.models.normaliser.RobustNormaliser`).
+
+    A sample is scored with the state *before* it, ``z = (x - m) / sqrt(v)``, once its
+    metric has ``warmup`` samples; it is flagged when ``|z| > threshold_for(false_alarm)``.
+    Scored samples are learned the way shiftsieve learns (so the comparison is about the
+    baseline model, not about this detail): the mean from the *cleaned* value
+    ``m + clip(x - m, +-threshold sd)`` (shiftsieve learns from ``z - s`` with ``s``
+    soft-thresholded at ``lambda``: the same clipping), and the variance only from
+    unflagged samples, their squares divided by ``E[X^2 | |X| < threshold]`` for the
+    truncation they went through (shiftsieve's residual scales, see DEVELOPERS.md).
+    A flagged sample therefore neither pulls the mean much nor widens the variance, which
+    would desensitise the metric during the very shift.  Missing values (NaN) are neither
+    scored nor learned.
+
+    The recursion depends on the previous sample's flag, so :meth:`process` walks the
+    samples of a batch in order, each step vectorised over the metrics.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(1)
+    >>> X = rng.standard_normal((300, 3))
+    >>> X[250:, 1] += 8.0                      # metric 1 steps by 8 sigma
+    >>> ewma = EWMAZScore(3, halflife=50.0, warmup=100)
+    >>> flags = ewma.process(X)
+    >>> flags.active[250:253, 1].tolist()    # flagged at once, and the shift does not teach the mean
+    [True, True, True]
+    """
+
+    def __init__(self, n_metrics: int, *, halflife: float, false_alarm: float = 1e-3, warmup: int = 540) -> None:
+        if n_metrics < 0:
+            raise ValueError(f"n_metrics must be >= 0, got {n_metrics}")
+        if warmup < 2:
+            raise ValueError(f"warmup must be >= 2 samples, got {warmup}")
+        self.alpha = 1.0 - decay_for_halflife(halflife)
+        self.threshold = threshold_for(false_alarm)
+        self._truncated_moment = truncated_second_moment(self.threshold)
+        self.warmup = int(warmup)
+        self.mean = np.zeros(n_metrics)
+        self.var = np.zeros(n_metrics)
+        self.count = np.zeros(n_metrics, dtype=np.int64)
+
+    def process(self, X: np.ndarray) -> Flags:
+        """Score, then learn, each row of ``X`` (B, n) in order."""
+        X = np.asarray(X, dtype=float)
+        if X.ndim != 2 or X.shape[1] != self.mean.size:
+            raise ValueError(f"expected X (B, {self.mean.size}), got {X.shape}")
+        B = X.shape[0]
+        stat = np.zeros(X.shape)
+        expected = np.empty(X.shape)
+        lam = self.threshold
+        for t in range(B):
+            x = X[t]
+            seen = np.isfinite(x)
+            diff = np.where(seen, x - self.mean, 0.0)
+            sd = np.maximum(np.sqrt(self.var), np.maximum(1e-9, 1e-6 * np.abs(self.mean)))
+            scored = seen & (self.count >= self.warmup)
+            z = np.where(scored, diff / sd, 0.0)
+            stat[t] = z
+            expected[t] = np.where(self.count > 0, self.mean, np.nan)
+            flagged = np.abs(z) > lam
+            self.count += seen
+            a = np.where(seen, np.maximum(self.alpha, 1.0 / np.maximum(self.count, 1)), 0.0)
+            self.mean = self.mean + a * np.where(flagged, np.sign(diff) * lam * sd, diff)   # the cleaned value
+            a = np.where(flagged, 0.0, a)
+            square = diff * diff / np.where(scored, self._truncated_moment, 1.0)
+            self.var = (1.0 - a) * (self.var + a * square)
+        return Flags(np.abs(stat) > lam, stat, expected)
+
+
+class HalfSpaceTreesDetector:
+    """river's ``HalfSpaceTrees`` on whole vectors, calibrated to a per-sample false-alarm rate.
+
+    - Inputs must lie in [0, 1] (the trees' default limits): each metric is scaled by its
+      warm-up minimum and maximum and clipped; a missing value takes the metric's warm-up
+      median (metrics absent from the warm-up are left out).
+    - :meth:`fit` learns the warm-up rows, then scores them; the anomaly-score threshold
+      is the warm-up scores' order statistic whose exceedance probability for a new,
+      exchangeable score, ``(k + 1) / (W + 1)``, is nearest ``false_alarm``.  That is as
+      close as an empirical quantile of ``W`` scores can get: with the default warm-up
+      (540) and ``false_alarm`` 1e-3 the threshold is the largest warm-up score and the
+      rate 1 / 541, about 1.8e-3.
+    - ``stat`` is the score's Gaussian-equivalent: the two-sided normal quantile of its
+      empirical exceedance probability among the warm-up scores, so the decision layer's
+      ``clear_sigma`` means what it means elsewhere.
+    - After warm-up it scores each vector, then learns it only when it was not flagged
+      (the same rule as the other detectors: a flagged sample does not teach the model).
+    - Fixed ``seed``: the trees are random, and replays must be reproducible.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(2)
+    >>> W = rng.standard_normal((300, 4))
+    >>> hst = HalfSpaceTreesDetector(4, false_alarm=0.01, window_size=100, seed=3).fit(W)
+    >>> X = rng.standard_normal((5, 4)); X[2] = 6.0   # one gross outlier vector
+    >>> hst.process(X).active[:, 0].tolist()
+    [False, False, True, False, False]
+    """
+
+    def __init__(self, n_metrics: int, *, false_alarm: float = 1e-3, n_trees: int = 10, height: int = 8,
+                 window_size: int = 250, seed: int = 0) -> None:
+        from river.anomaly import HalfSpaceTrees
+
+        threshold_for(false_alarm)
+        self.false_alarm = float(false_alarm)
+        self.n_metrics = int(n_metrics)
+        self.model = HalfSpaceTrees(n_trees=n_trees, height=height, window_size=window_size, seed=seed)
+        self.lo = self.span = self.fill = None
+        self.features = np.zeros(0, dtype=np.int64)
+        self.warmup_scores = np.zeros(0)
+        self.score_threshold = math.inf
+
+    def _scaled(self, X: np.ndarray) -> np.ndarray:
+        S = (X[:, self.features] - self.lo) / self.span
+        return np.clip(np.where(np.isfinite(S), S, self.fill), 0.0, 1.0)
+
+    def _row(self, s: np.ndarray) -> dict[int, float]:
+        return dict(zip(self.features.tolist(), s.tolist()))
+
+    def fit(self, W: np.ndarray) -> "HalfSpaceTreesDetector":
+        """Scale, learn and calibrate on the warm-up block ``W`` (T0, n)."""
+        W = np.asarray(W, dtype=float)
+        if W.ndim != 2 or W.shape[1] != self.n_metrics or W.shape[0] < 2:
+            raise ValueError(f"expected a warm-up block (>= 2, {self.n_metrics}), got {W.shape}")
+        self.features = np.flatnonzero(np.isfinite(W).any(axis=0))
+        V = W[:, self.features]
+        self.lo = np.nanmin(V, axis=0)
+        self.span = np.maximum(np.nanmax(V, axis=0) - self.lo, 1e-12)
+        self.fill = (column_median(V) - self.lo) / self.span
+        S = self._scaled(W)
+        for s in S:
+            self.model.learn_one(self._row(s))
+        self.warmup_scores = np.sort([self.model.score_one(self._row(s)) for s in S])
+        n = self.warmup_scores.size
+        k = min(max(round(self.false_alarm * (n + 1)) - 1, 0), n - 1)   # k scores above the threshold
+        self.score_threshold = float(self.warmup_scores[n - 1 - k])
+        return self
+
+    def gaussian_equivalent(self, scores: np.ndarray) -> np.ndarray:
+        """Two-sided normal quantile of each score's exceedance probability among the warm-up scores."""
+        n = self.warmup_scores.size
+        above = n - np.searchsorted(self.warmup_scores, scores, side="left")   # warm-up scores >= score
+        return -ndtri(np.minimum((above + 1) / (n + 1), 1.0) / 2.0)
+
+    def process(self, X: np.ndarray) -> Flags:
+        """Score each row of ``X`` (B, n) in order, learning the unflagged ones; k = 1 column."""
+        if self.lo is None:
+            raise RuntimeError("call fit() on the warm-up block first")
+        S = self._scaled(np.asarray(X, dtype=float))
+        scores = np.empty(S.shape[0])
+        for t, s in enumerate(S):
+            x = self._row(s)
+            scores[t] = self.model.score_one(x)
+            if not scores[t] > self.score_threshold:
+                self.model.learn_one(x)
+        active = scores > self.score_threshold
+        return Flags(active[:, None], self.gaussian_equivalent(scores)[:, None], np.full((S.shape[0], 1), np.nan))
+
+
+@dataclass(frozen=True)
+class PCPDetection:
+    """:func:`pcp_detect`'s flags and the decomposition they came from (normalised units)."""
+
+    flags: Flags
+    decomposition: PCPResult
+    residual_scale: np.ndarray
+
+
+def pcp_detect(F: np.ndarray, *, warmup: int, false_alarm: float = 1e-3, tol: float = 1e-7,
+               max_iter: int = 1000) -> PCPDetection:
+    """Offline low-rank-plus-sparse detection on one entity's whole matrix ``F`` (T, n).
+
+    Columns are normalised by the median and MAD of the first ``warmup`` rows
+    (:class:`~shiftsieve.models.normaliser.RobustNormaliser`), missing entries are set to
+    the warm-up median (0) and never flagged, and Principal Component Pursuit splits the
+    matrix into ``L + S``.  ``S_tj`` is flagged when it exceeds ``threshold_for(false_alarm)``
+    in units of column j's robust scale (MAD) of the residual ``M - L``: the same
+    per-sample false-alarm target as the online detectors, with a noise scale that the
+    decomposition itself leaves behind.  ``expected`` is ``L`` back on ``F``'s scale.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(4)
+    >>> F = rng.standard_normal((200, 2)) @ rng.standard_normal((2, 12)) * 5 + rng.standard_normal((200, 12))
+    >>> F[150:170, 7] += 10.0                  # metric 7 steps for 20 samples
+    >>> found = pcp_detect(F, warmup=100).flags.active
+    >>> int(np.argmax(found[150:170].sum(axis=0))), int(found[150:170, 7].sum())
+    (7, 20)
+    """
+    F = np.asarray(F, dtype=float)
+    if F.ndim != 2 or not 2 <= warmup <= F.shape[0]:
+        raise ValueError(f"expected F (T, n) with 2 <= warmup <= T, got {F.shape} and warmup {warmup}")
+    norm = RobustNormaliser(np.zeros(F.shape[1], bool)).fit(F[:warmup])
+    Z = norm.transform(F)
+    seen = np.isfinite(Z)
+    M = np.where(seen, Z, 0.0)
+    result = principal_component_pursuit(M, tol=tol, max_iter=max_iter)
+    R = np.where(seen, M - result.low_rank, np.nan)
+    scale = MAD_TO_SIGMA * column_median(np.abs(R - column_median(R)))
+    scale = np.where(np.isfinite(scale) & (scale > 1e-9), scale, 1.0)
+    stat = np.where(seen, result.sparse / scale, 0.0)
+    flags = Flags(np.abs(stat) > threshold_for(false_alarm), stat, norm.inverse(result.low_rank))
+    return PCPDetection(flags, result, scale)
