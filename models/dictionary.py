@@ -5,6 +5,17 @@ family such as latency, one dependency), so "the database got slower" can be a
 single coefficient instead of many.  Its penalty uses the root-mean-square of the
 members' residual scales, which gives a group the same false-alarm probability
 as a single metric when residuals are independent.
+
+Example: four metrics, the last two forming one group.
+
+>>> import numpy as np
+>>> phi = build_dictionary(4, [np.array([2, 3])])
+>>> phi.shape, round(float(phi[2, 4]), 4)          # the group column has unit norm
+((4, 5), 0.7071)
+>>> column_scales(np.array([1.0, 1.0, 2.0, 2.0]), phi).round(3).tolist()   # RMS of the members
+[1.0, 1.0, 2.0, 2.0, 2.0]
+>>> metric_effect(np.array([[0, 0, 0, 0, 1.0]]), phi).round(4).tolist()   # the group moves both
+[[0.0, 0.0, 0.7071, 0.7071]]
 """
 
 from __future__ import annotations
