@@ -2,9 +2,11 @@
 
     shiftsieve demo [--scenario NAME]                 replay a bundled incident, print the alerts
     shiftsieve replay INPUT --events OUT.jsonl [--config FILE] [--dead-letter FILE]
+                      [--report DIR [--labels LABELS] [--budget ALERTS_PER_DAY [--quiet-until TS]]]
     shiftsieve run [--config FILE] [--source URL] [--events FILE] [--listen HOST:PORT]
     shiftsieve evaluate INPUT LABELS [--config FILE] [--methods a,b,...] [--json]
     shiftsieve evaluate --events EVENTS LABELS [--vectors N] [--json]
+    shiftsieve tune INPUT --budget ALERTS_PER_DAY [--quiet-until TS] [--labels LABELS] [--config FILE] [--write FILE]
     shiftsieve config check [FILE]
 
 User mistakes (missing files, bad configuration, unusable input) end with a
@@ -22,6 +24,7 @@ from .config import ConfigError, load_config, render
 from .evaluate import EvaluationError, evaluate, format_table, load_events, load_labels
 from .readers import InputError
 from .replay import replay
+from .report import ReportError
 
 EXIT_USAGE = 2
 
@@ -45,6 +48,14 @@ def _parser() -> argparse.ArgumentParser:
     rep.add_argument("--config", metavar="FILE", help="TOML configuration")
     rep.add_argument("--dead-letter", metavar="FILE", help="write rejected lines here with line number and reason")
     rep.add_argument("--quiet", action="store_true", help="no progress bar and no summary")
+    rep.add_argument("--report", metavar="DIR", help="write an incident-review page (index.html and PNG figures) "
+                     "into DIR (created if missing; a previous report there is replaced)")
+    rep.add_argument("--labels", metavar="LABELS", help="with --report: draw and score the labelled incidents and "
+                     "compare the methods on them")
+    rep.add_argument("--budget", metavar="ALERTS_PER_DAY", type=float, help="with --report: recommend settings "
+                     "that keep alerts within this budget on a quiet period (as shiftsieve tune)")
+    rep.add_argument("--quiet-until", metavar="TS", help="with --budget: end of the quiet period, epoch seconds "
+                     "or RFC 3339")
 
     run = sub.add_parser("run", help="run the detector as a service on a stream (stdin by default)")
     run.add_argument("--config", metavar="FILE", help="TOML configuration")
@@ -66,6 +77,17 @@ def _parser() -> argparse.ArgumentParser:
     ev.add_argument("--vectors", type=int, help="with --events: vectors in the replayed input "
                                                 "(default: from the labels file)")
     ev.add_argument("--json", action="store_true", help="print the figures as JSON")
+
+    tune = sub.add_parser("tune", help="find the most sensitive false_alarm and k-of-m confirmation that keep "
+                                       "alerts within a budget on a quiet period (exit 1 when none does)")
+    tune.add_argument("input", metavar="INPUT")
+    tune.add_argument("--budget", metavar="ALERTS_PER_DAY", type=float, required=True,
+                      help="incidents per day the quiet period may open")
+    tune.add_argument("--quiet-until", metavar="TS", help="end of the quiet period, epoch seconds or RFC 3339 "
+                      "(default: before the first labelled incident, else half of the input's span)")
+    tune.add_argument("--labels", metavar="LABELS", help="labels file: scores on the rest, default quiet period")
+    tune.add_argument("--config", metavar="FILE", help="TOML configuration (the other settings are kept)")
+    tune.add_argument("--write", metavar="FILE", help="write the TOML fragment here instead of printing it")
 
     cfg = sub.add_parser("config", help="configuration tools")
     cfg_sub = cfg.add_subparsers(dest="config_command", required=True, metavar="ACTION")
@@ -93,6 +115,28 @@ def _evaluate(args: argparse.Namespace) -> int:
     return 0
 
 
+def _tune(args: argparse.Namespace) -> int:
+    from .tune import EXIT_NOTHING_FITS, TuneError, format_tuning, parse_time, toml_fragment, tune
+    try:
+        quiet_until = parse_time(args.quiet_until) if args.quiet_until is not None else None
+        labels = load_labels(args.labels) if args.labels else None
+        result = tune(args.input, load_config(args.config), budget_per_day=args.budget,
+                      quiet_until=quiet_until, labels=labels)
+    except TuneError as exc:
+        print(f"shiftsieve: error: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    print(format_tuning(result))
+    if result.recommended is None:
+        return EXIT_NOTHING_FITS
+    if args.write:
+        with open(args.write, "w", encoding="utf-8") as f:
+            f.write(toml_fragment(result))
+        print(f"\nwrote {args.write}")
+    else:
+        print("\n" + toml_fragment(result), end="")
+    return 0
+
+
 def main(argv: list[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     try:
@@ -103,10 +147,21 @@ def main(argv: list[str] | None = None) -> int:
                 return 0
             return run_demo(args.scenario, load_config(args.config), events_path=args.events)
         if args.command == "replay":
-            summary = replay(args.input, load_config(args.config), events_path=args.events,
-                             dead_letter_path=args.dead_letter, progress=not args.quiet)
+            if args.report is None and (args.labels or args.budget is not None or args.quiet_until):
+                raise ReportError("--labels, --budget and --quiet-until go with --report DIR")
+            if args.report is not None:
+                from .report import replay_with_report
+                summary, page = replay_with_report(
+                    args.input, load_config(args.config), directory=args.report, events_path=args.events,
+                    dead_letter_path=args.dead_letter, labels_path=args.labels, budget_per_day=args.budget,
+                    quiet_until=args.quiet_until, progress=not args.quiet)
+            else:
+                summary = replay(args.input, load_config(args.config), events_path=args.events,
+                                 dead_letter_path=args.dead_letter, progress=not args.quiet)
             if not args.quiet:
                 print(f"shiftsieve: {summary.format()}", file=sys.stderr)
+                if args.report is not None:
+                    print(f"shiftsieve: report written to {page}", file=sys.stderr)
             return 0
         if args.command == "run":
             from .endpoints import parse_listen
@@ -128,10 +183,12 @@ def main(argv: list[str] | None = None) -> int:
                            dead_letter_path=args.dead_letter, listen=args.listen).run()
         if args.command == "evaluate":
             return _evaluate(args)
+        if args.command == "tune":
+            return _tune(args)
         if args.command == "config":
             print(render(load_config(args.file)), end="")
             return 0
-    except (ConfigError, InputError, EvaluationError) as exc:
+    except (ConfigError, InputError, EvaluationError, ReportError) as exc:
         print(f"shiftsieve: error: {exc}", file=sys.stderr)
         return EXIT_USAGE
     except BrokenPipeError:   # output piped into `head` and closed: not an error

@@ -36,8 +36,8 @@ from .decode import Vector
 from .engine import Engine
 from .evaluate import Evaluation, EvaluationError, Labels, evaluate
 from .events import events_from_transitions
-from .readers import InputError, Rejected, open_records
-from .replay import decode_limits
+from .readers import InputError, Rejected
+from .replay import open_input
 
 METHODS = ("shiftsieve", "ewma_zscore", "halfspacetrees", "pcp")
 LOCALISES = {"shiftsieve": True, "ewma_zscore": True, "halfspacetrees": False, "pcp": True}
@@ -100,7 +100,7 @@ def parse_methods(text: str) -> list[str]:
 
 def _load(path: str | Path, config: Config) -> list[Vector]:
     """The input's valid vectors in file order (undecodable lines are skipped, as replay does)."""
-    with open_records(path, decode_limits(config)) as records:
+    with open_input(path, config) as records:
         vectors = [r for r in records if not isinstance(r, Rejected)]
     if not vectors:
         raise InputError(f"{path}: no valid vector in the input")

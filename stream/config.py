@@ -165,7 +165,8 @@ SCHEMA: tuple[Setting, ...] = (
     Setting("source", "encoding", str, "vector", "one of vector, sample, otlp_json", _one_of("vector", "sample", "otlp_json"),
             "message encoding: the vector message, one sample per message, or OpenTelemetry OTLP/JSON"),
     Setting("source", "entity_labels", list, ["service", "instance"], "a non-empty list of label names",
-            lambda v: bool(v) and _patterns(v), "labels whose values name the entity (sample and otlp_json)"),
+            lambda v: bool(v) and _patterns(v),
+            "labels whose values name the entity (sample and otlp_json, and replay of a Prometheus .json)"),
     Setting("source", "step_seconds", float, 30.0, "a number of seconds in (0, 86400]", _range(0, 86400, lo_open=True),
             "samples are assembled into one vector per entity and step (sample and otlp_json)"),
     Setting("source", "allowed_lateness_seconds", float, 60.0, "a number of seconds in [0, 86400]", _range(0, 86400),
@@ -207,6 +208,9 @@ SCHEMA: tuple[Setting, ...] = (
             "longest wait for input in one poll (also bounds how long SIGTERM takes)"),
     Setting("input", "max_message_bytes", int, 1 << 20, "an integer in 64..67108864", _range(64, 1 << 26),
             "largest accepted message or line"),
+    Setting("input", "max_file_bytes", int, 64 << 20, "an integer in 1024..4294967296", _range(1024, 1 << 32),
+            "largest whole-document replay input (a Prometheus range-query .json, decompressed size), "
+            "read into memory at once (parsed, it takes several times this)"),
     Setting("input", "max_metrics_per_message", int, 10_000, "an integer in 1..1000000", _range(1, 1_000_000),
             "most metrics accepted in one vector"),
 )

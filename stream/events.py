@@ -7,7 +7,18 @@ A group column of the dictionary is reported as one entry named ``group:<label>`
 members in ``members``, ``value``/``expected`` null).  Extra fields: ``onset`` (firing:
 true when the event opens the incident),
 ``started`` (onset time of the incident), ``duration_seconds`` (resolved and
-adapted).
+adapted), and ``window_metrics``: joint localisation over the incident's window of
+residuals so far (every event of an incident, for the closing one its whole window)::
+
+    "window_metrics": {"group_lasso": [{"name": "lat_p99_ms", "score": 5.8}, ...],
+                       "msbl": [{"name": "lat_p99_ms", "score": 6.1}, ...], "rows": 64}
+
+``rows`` is the window's length in samples (from ``confirm_m - 1`` samples before the onset,
+at most the first 120); each list holds the columns (names as in ``metrics``, groups as
+``group:<label>``) whose row of the multiple-measurement-vector solution is non-zero, at most
+10, ranked by ``score``, the row's root-mean-square over the window in residual sigmas: the
+row-sparse group LASSO with the per-sample false-alarm target (chi quantile), and M-SBL, which
+needs no threshold (its scores are posterior means, the LASSO's are shrunk).
 """
 
 from __future__ import annotations
@@ -19,8 +30,11 @@ import numpy as np
 import orjson
 
 from shiftsieve.models.decision import Transition
+from shiftsieve.models.mmv import rank_rows
 
 if TYPE_CHECKING:
+    from shiftsieve.models.detector import WindowLocalisation
+
     from .assemble import EntityStream
 
 
@@ -45,11 +59,24 @@ def _metric_entry(stream: "EntityStream", names: list[str], column: int, shift: 
     return entry
 
 
-def events_from_transitions(stream: "EntityStream", transitions: list[Transition],
-                            ts: np.ndarray) -> Iterator[dict]:
-    """One event per transition, metrics ranked by |shift_sigma| (descending, then by name)."""
+def window_metrics(localisation: "WindowLocalisation", names: list[str], top: int) -> dict:
+    """The ``window_metrics`` field: both rankings (``top`` columns at most) named by ``names``
+    (the dictionary's column names)."""
+    rows = localisation.rows
+    labels = [names[c] for c in localisation.columns]
+    field = {method: [{"name": name, "score": _number(norm / math.sqrt(rows), 4)}
+                      for name, norm in rank_rows(getattr(localisation, method), labels, top)]
+             for method in ("group_lasso", "msbl")}
+    field["rows"] = rows
+    return field
+
+
+def events_from_transitions(stream: "EntityStream", transitions: list[Transition], ts: np.ndarray,
+                            windows: list[dict | None] | None = None) -> Iterator[dict]:
+    """One event per transition, metrics ranked by |shift_sigma| (descending, then by name);
+    ``windows``, when given, holds each transition's ``window_metrics`` (None: none)."""
     names = stream.column_names
-    for t in transitions:
+    for i, t in enumerate(transitions):
         order = sorted(range(t.metrics.size), key=lambda i: (-abs(float(t.shift[i])), names[t.metrics[i]]))
         event = {
             "ts": float(ts[t.row]),
@@ -64,6 +91,8 @@ def events_from_transitions(stream: "EntityStream", transitions: list[Transition
             event["onset"] = t.onset
         else:
             event["duration_seconds"] = round(float(ts[t.row]) - t.onset_ts, 3)
+        if windows is not None and windows[i] is not None:
+            event["window_metrics"] = windows[i]
         yield event
 
 

@@ -1,4 +1,6 @@
-"""Replay inputs: stream `Vector`s and `Rejected` lines from .jsonl, .jsonl.gz, .csv or .csv.gz files.
+"""Replay inputs: stream `Vector`s and `Rejected` lines from .jsonl, .jsonl.gz, .csv or .csv.gz files,
+and from a Prometheus range-query response in .json or .json.gz (see promql.py; read whole, at most
+`max_file_bytes` after decompression).
 
 The format is chosen by suffix (case-insensitive). Reading is streaming and in
 constant memory: lines are split from fixed-size chunks and a line longer than
@@ -35,7 +37,7 @@ import stat
 import zlib
 from dataclasses import dataclass
 from types import TracebackType
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from typing import IO, Any, BinaryIO, Callable
 
 import orjson
@@ -60,7 +62,9 @@ DEFAULT_RAW_CAP = 64 * 1024  # bytes of a rejected line kept for dead letters
 _CHUNK = 64 * 1024
 _BOM = b"\xef\xbb\xbf"
 _SUFFIXES = {".jsonl": ("jsonl", False), ".jsonl.gz": ("jsonl", True),
-             ".csv": ("csv", False), ".csv.gz": ("csv", True)}
+             ".csv": ("csv", False), ".csv.gz": ("csv", True),
+             ".json": ("promql", False), ".json.gz": ("promql", True)}
+DEFAULT_MAX_FILE_BYTES = 64 << 20  # config input.max_file_bytes: a whole-document input (.json)
 
 
 @dataclass(frozen=True, slots=True)
@@ -135,10 +139,13 @@ class RecordStream(Iterator[Vector | Rejected]):
 
 
 def open_records(path: str | os.PathLike[str], limits: DecodeLimits = DEFAULT_LIMITS, *,
-                 raw_cap: int = DEFAULT_RAW_CAP) -> RecordStream:
+                 raw_cap: int = DEFAULT_RAW_CAP, entity_labels: Sequence[str] = ("service", "instance"),
+                 max_file_bytes: int = DEFAULT_MAX_FILE_BYTES) -> RecordStream:
     """Open a replay input; raises InputError if it is unusable as a whole (see module doc).
 
-    `raw_cap` bounds the bytes of each rejected line kept in `Rejected.raw`.
+    `raw_cap` bounds the bytes of each rejected line kept in `Rejected.raw`; `entity_labels` and
+    `max_file_bytes` apply to .json range-query responses (config source.entity_labels and
+    input.max_file_bytes).
     """
     if raw_cap < 0:
         raise ValueError(f"raw_cap must be >= 0, got {raw_cap}")
@@ -155,8 +162,14 @@ def open_records(path: str | os.PathLike[str], limits: DecodeLimits = DEFAULT_LI
         except (OSError, EOFError, zlib.error) as exc:
             what = "not a readable gzip file" if compressed else "cannot read"
             raise InputError(f"{name}: {what}: {_one_line(exc)}") from None
-        lines = _lines(stream, first, limits, raw_cap)
-        records = _csv_records(name, lines, limits, raw_cap) if kind == "csv" else _jsonl_records(lines, limits, raw_cap)
+        if kind == "promql":
+            from .promql import query_range_records  # noqa: PLC0415  (promql.py imports this module)
+            records = query_range_records(name, _whole(name, stream, first, max_file_bytes), limits,
+                                          entity_labels=entity_labels, raw_cap=raw_cap)
+        else:
+            lines = _lines(stream, first, limits, raw_cap)
+            records = _csv_records(name, lines, limits, raw_cap) if kind == "csv" else \
+                _jsonl_records(lines, limits, raw_cap)
     except BaseException:
         stream.close()
         file.close()
@@ -169,7 +182,20 @@ def _format(name: str) -> tuple[str, bool]:
     for suffix, fmt in _SUFFIXES.items():
         if lower.endswith(suffix):
             return fmt
-    raise InputError(f"{name}: unknown input format; expected a .jsonl, .jsonl.gz, .csv or .csv.gz file")
+    raise InputError(f"{name}: unknown input format; expected a .jsonl, .jsonl.gz, .csv, .csv.gz, .json or "
+                     f".json.gz file")
+
+
+def _whole(name: str, stream: IO[bytes], first: bytes, max_file_bytes: int) -> bytes:
+    """The rest of a whole-document input after `first`, at most `max_file_bytes`; InputError otherwise."""
+    try:
+        data = first + stream.read(max_file_bytes + 1 - len(first)) if len(first) <= max_file_bytes else first
+    except (OSError, EOFError, zlib.error) as exc:
+        raise InputError(f"{name}: cannot read: {_one_line(exc)}") from None
+    if len(data) > max_file_bytes:
+        raise InputError(f"{name}: more than {max_file_bytes:,} bytes (input.max_file_bytes); a .json input "
+                         f"is read whole: export a shorter window or raise the limit")
+    return data
 
 
 def _lines(stream: IO[bytes], first: bytes, limits: DecodeLimits, raw_cap: int) -> Iterator[tuple[int, bytes] | Rejected]:

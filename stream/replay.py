@@ -1,7 +1,8 @@
 """Replay: run a recorded file through the full detector, deterministically.
 
 ``shiftsieve replay INPUT --events OUT.jsonl [--config FILE] [--dead-letter FILE]``
-reads ``.jsonl``, ``.jsonl.gz`` or wide ``.csv``; undecodable lines are skipped,
+reads ``.jsonl``, ``.jsonl.gz``, wide ``.csv`` (``.csv.gz``) or a Prometheus range-query
+export (``.json``, ``.json.gz``, see :mod:`.promql`); undecodable lines are skipped,
 counted and optionally written to the dead-letter file; the replay goes on.
 """
 
@@ -16,9 +17,9 @@ from typing import TextIO
 
 from .config import Config
 from .decode import DecodeLimits, encode_vector
-from .engine import Engine, EventSink
+from .engine import BatchObserver, Engine, EventSink
 from .events import EventFileWriter
-from .readers import DeadLetterWriter, InputError, Rejected, input_size, open_records
+from .readers import DeadLetterWriter, InputError, RecordStream, Rejected, input_size, open_records
 
 
 @dataclass
@@ -82,15 +83,25 @@ def decode_limits(config: Config) -> DecodeLimits:
                         max_metrics=config.input.max_metrics_per_message)
 
 
+def open_input(path: str | Path, config: Config) -> RecordStream:
+    """The records of a replay input under the configured limits and entity labels (the one way
+    replay, evaluate and tune read their input)."""
+    return open_records(path, decode_limits(config), entity_labels=config.source.entity_labels,
+                        max_file_bytes=config.input.max_file_bytes)
+
+
 def replay(path: str | Path, config: Config, *, events_path: str | None = None,
            dead_letter_path: str | None = None, sinks: list[EventSink] | None = None,
-           progress: bool = True) -> ReplaySummary:
-    """Replay one file; raises :class:`InputError` when the input as a whole is unusable."""
+           progress: bool = True, observers: list[BatchObserver] | None = None) -> ReplaySummary:
+    """Replay one file; raises :class:`InputError` when the input as a whole is unusable.
+
+    ``observers`` see every scored batch (:data:`.engine.BatchObserver`), e.g. the report's collector.
+    """
     path = Path(path)
     started = time.perf_counter()
     rejected_by_reason: dict[str, int] = {}
     with ExitStack() as stack:
-        records = open_records(path, decode_limits(config))
+        records = open_input(path, config)
         dead = stack.enter_context(DeadLetterWriter(dead_letter_path)) if dead_letter_path else None
         all_sinks = list(sinks or [])
         if events_path:
@@ -101,7 +112,7 @@ def replay(path: str | Path, config: Config, *, events_path: str | None = None,
             if dead is not None:
                 dead.write(Rejected(line=line, reason=reason, detail=detail, raw=raw), source=str(path))
 
-        engine = Engine.from_config(config, sinks=all_sinks)
+        engine = Engine.from_config(config, sinks=all_sinks, observers=observers or ())
         bar = Progress(input_size(path) if progress else None)
         count = 0
         for record in records:

@@ -188,6 +188,29 @@ def series_name(name: str, labels: Mapping[str, str]) -> str:
     return name + "{" + ",".join(f'{k}="{_escape(pairs[k])}"' for k in sorted(pairs)) + "}"
 
 
+def series_identity(name: str, labels: Mapping[str, str], entity_labels: Sequence[str],
+                    limits: DecodeLimits = DEFAULT_LIMITS) -> tuple[str, str]:
+    """The entity and metric of one series: the values of ``entity_labels`` joined with "/", and
+    `series_name` of ``name`` with the other labels. Shared by live samples and replayed exports,
+    so both name things alike. DecodeError (no_entity, bad_entity, label_collision, bad_name)."""
+    missing = [k for k in entity_labels if not (labels.get(k) or "").strip()]   # as the vector decoder
+    if missing:
+        raise DecodeError("no_entity", f"has no {', '.join(missing)} label (source.entity_labels: "
+                                       f"{', '.join(entity_labels)}); its labels: {', '.join(sorted(labels)) or 'none'}")
+    entity = "/".join(labels[k] for k in entity_labels)
+    if len(entity) > limits.max_entity_length:
+        raise DecodeError("bad_entity", f"entity is {len(entity)} characters, over the limit of "
+                                        f"{limits.max_entity_length} (max_entity_length)")
+    try:
+        metric = series_name(name, {k: v for k, v in labels.items() if k not in entity_labels})
+    except ValueError as exc:
+        raise DecodeError("label_collision", str(exc)) from None
+    if len(metric) > limits.max_name_length:
+        raise DecodeError("bad_name", f"metric name is {len(metric)} characters, over the limit of "
+                                      f"{limits.max_name_length} (max_name_length)")
+    return entity, metric
+
+
 @dataclass(slots=True)
 class _Entity:
     labels: dict[str, str]
@@ -223,7 +246,6 @@ class SampleAssembler:
         self.watermark = -math.inf
         self.counts: dict[str, int] = dict.fromkeys(
             ("accepted", "duplicate", "out_of_order", *sorted(REJECT_REASONS)), 0)
-        self._entity_keys = frozenset(self.entity_labels)
         self._entities: dict[str, _Entity] = {}
         self._heap: list[tuple[float, str]] = []  # (bucket start, entity) of every open bucket
         # (bucket start, entity) -> {partition: lowest offset of a message with a sample in it}
@@ -248,17 +270,10 @@ class SampleAssembler:
         """Take one sample: the vectors it completes, and its rejection reason (None = accepted).
 
         ``origin`` is the (partition, offset) of its message, for :meth:`held_offsets`."""
-        if not all((sample.labels.get(key) or "").strip() for key in self.entity_labels):   # as the vector decoder
-            return [], self._reject("no_entity")
-        entity = "/".join(sample.labels[key] for key in self.entity_labels)
-        if len(entity) > self.limits.max_entity_length:
-            return [], self._reject("bad_entity")
         try:
-            name = series_name(sample.name, {k: v for k, v in sample.labels.items() if k not in self._entity_keys})
-        except ValueError:
-            return [], self._reject("label_collision")
-        if len(name) > self.limits.max_name_length:
-            return [], self._reject("bad_name")
+            entity, name = series_identity(sample.name, sample.labels, self.entity_labels, self.limits)
+        except DecodeError as exc:
+            return [], self._reject(exc.reason)
         start = math.floor(sample.ts / self.step) * self.step
         if self._closed(start):
             return [], self._reject("late")

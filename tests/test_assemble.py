@@ -63,3 +63,25 @@ def test_group_by_label_finds_a_dependency_slowdown_too_small_per_metric():
     assert group["name"] == "group:dependency=payments" and group["members"] == names[n_other:]
     # Its size: the group coefficient over the group's residual scale, sqrt(12) * 1.2 = 4.2.
     assert group["shift_sigma"] == pytest.approx(np.sqrt(12) * 1.2, rel=0.25)
+
+
+def test_events_name_their_metrics_even_when_a_stale_metric_is_dropped_in_the_same_batch():
+    # A metric absent for more than drop_after samples is dropped after its batch; a transition in
+    # that batch must still be named by the columns it was scored with (the planted step is the truth).
+    from shiftsieve.models.detector import DetectorConfig
+    rng = np.random.default_rng(11)
+    names = [f"m{j}" for j in range(8)]
+    events: list[dict] = []
+    engine = Engine(DetectorConfig(warmup=100), MetricRules(drop_after=30), batch_size=50, sinks=[events.append])
+    for t in range(200):
+        row = 10.0 + rng.standard_normal(8)
+        if t >= 110:
+            row[7] += 15.0   # the last column steps up inside the batch in which m0 is dropped
+        metrics = dict(zip(names, row.tolist()))
+        if t >= 100:
+            del metrics["m0"]
+        engine.feed(Vector(float(t), "pier-3", metrics, {}))
+    engine.flush()
+    assert "m0" not in engine.entities["pier-3"].names      # it was dropped
+    firing = [e for e in events if e["state"] == "firing"]
+    assert firing and firing[0]["metrics"][0]["name"] == "m7" and firing[0]["ts"] < 150

@@ -198,7 +198,7 @@ def test_missing_file_directory_and_unknown_suffix(tmp_path: Path) -> None:
     assert "No such file" in _input_error(tmp_path / "missing.jsonl")
     (tmp_path / "dir.csv").mkdir()
     _input_error(tmp_path / "dir.csv")
-    assert "unknown input format" in _input_error(write(tmp_path / "data.json", jline("a")))
+    assert "unknown input format" in _input_error(write(tmp_path / "data.parquet", jline("a")))
     assert "unknown input format" in _input_error(write(tmp_path / "data.ndjson", jline("a")))
 
 
