@@ -7,6 +7,8 @@
     shiftsieve evaluate INPUT LABELS [--config FILE] [--methods a,b,...] [--json]
     shiftsieve evaluate --events EVENTS LABELS [--vectors N] [--json]
     shiftsieve tune INPUT --budget ALERTS_PER_DAY [--quiet-until TS] [--labels LABELS] [--config FILE] [--write FILE]
+    shiftsieve produce --brokers HOST:PORT[,HOST:PORT] --topic TOPIC [--encoding vector|sample|otlp_json]
+                       [--scenario NAME | --input FILE] [--speedup X] [--loop] [--config FILE]
     shiftsieve config check [FILE]
 
 User mistakes (missing files, bad configuration, unusable input) end with a
@@ -20,7 +22,7 @@ import sys
 
 import orjson
 
-from .config import ConfigError, load_config, render
+from .config import ENCODINGS, ConfigError, load_config, render
 from .evaluate import EvaluationError, evaluate, format_table, load_events, load_labels
 from .readers import InputError
 from .replay import replay
@@ -89,6 +91,21 @@ def _parser() -> argparse.ArgumentParser:
     tune.add_argument("--config", metavar="FILE", help="TOML configuration (the other settings are kept)")
     tune.add_argument("--write", metavar="FILE", help="write the TOML fragment here instead of printing it")
 
+    prod = sub.add_parser("produce", help="write a bundled incident or a replay input into a Kafka topic, "
+                                          "paced in event time (for staging and the compose stack)")
+    prod.add_argument("--brokers", metavar="HOST:PORT[,HOST:PORT]", required=True, help="Kafka bootstrap servers")
+    prod.add_argument("--topic", required=True, help="topic to write")
+    prod.add_argument("--encoding", choices=ENCODINGS,
+                      help="message encoding (default: source.encoding of the configuration)")
+    what = prod.add_mutually_exclusive_group()
+    what.add_argument("--scenario", metavar="NAME", help="bundled incident (default: single_shift; see demo --list)")
+    what.add_argument("--input", metavar="FILE", help="any replay input (.jsonl, .jsonl.gz, .csv(.gz), .json(.gz))")
+    prod.add_argument("--speedup", metavar="X", default="0", help="send event time X times faster than real time "
+                      "(60: a minute of data per second); 0 or max: as fast as possible (default)")
+    prod.add_argument("--loop", action="store_true", help="start over at the end, with later timestamps, until stopped")
+    prod.add_argument("--config", metavar="FILE", help="TOML configuration ([kafka] TLS/SASL, source.entity_labels, "
+                      "source.step_seconds)")
+
     cfg = sub.add_parser("config", help="configuration tools")
     cfg_sub = cfg.add_subparsers(dest="config_command", required=True, metavar="ACTION")
     check = cfg_sub.add_parser("check", help="validate a TOML file and print the effective values")
@@ -135,6 +152,16 @@ def _tune(args: argparse.Namespace) -> int:
     else:
         print("\n" + toml_fragment(result), end="")
     return 0
+
+
+def _produce(args: argparse.Namespace) -> int:
+    from .produce import ProduceError, run_produce
+    try:
+        return run_produce(load_config(args.config), brokers=args.brokers, topic=args.topic, encoding=args.encoding,
+                           scenario=args.scenario, input_path=args.input, speedup=args.speedup, loop=args.loop)
+    except ProduceError as exc:
+        print(f"shiftsieve: error: {exc}", file=sys.stderr)
+        return EXIT_USAGE
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -185,6 +212,8 @@ def main(argv: list[str] | None = None) -> int:
             return _evaluate(args)
         if args.command == "tune":
             return _tune(args)
+        if args.command == "produce":
+            return _produce(args)
         if args.command == "config":
             print(render(load_config(args.file)), end="")
             return 0

@@ -70,6 +70,8 @@ def _api_version(v: Any) -> bool:
 
 
 SECRETS = {("kafka", "sasl_password")}
+#: The input encodings a source can carry (source.encoding, and what `shiftsieve produce` writes).
+ENCODINGS = ("vector", "sample", "otlp_json")
 
 
 def _kafka_topic_or_empty(v: Any) -> bool:
@@ -162,7 +164,7 @@ SCHEMA: tuple[Setting, ...] = (
             "samples a metric may be absent before it is dropped from its entity"),
     Setting("source", "url", str, "-", "kafka://HOST:PORT[,HOST:PORT]/TOPIC?group=NAME, a file path, or - (stdin)",
             _source_url, "where `shiftsieve run` reads vector messages"),
-    Setting("source", "encoding", str, "vector", "one of vector, sample, otlp_json", _one_of("vector", "sample", "otlp_json"),
+    Setting("source", "encoding", str, "vector", "one of " + ", ".join(ENCODINGS), _one_of(*ENCODINGS),
             "message encoding: the vector message, one sample per message, or OpenTelemetry OTLP/JSON"),
     Setting("source", "entity_labels", list, ["service", "instance"], "a non-empty list of label names",
             lambda v: bool(v) and _patterns(v),

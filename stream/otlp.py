@@ -41,7 +41,8 @@ from __future__ import annotations
 
 import math
 import re
-from collections.abc import Collection, Mapping
+from collections.abc import Collection, Iterable, Mapping
+from fractions import Fraction
 from typing import Any
 
 import orjson
@@ -49,7 +50,7 @@ import orjson
 from .decode import DEFAULT_LIMITS, DecodeError, DecodeLimits, _is_utf8, _kind
 from .samples import Sample, check_name, check_value, load_json
 
-__all__ = ["OTLP_REASONS", "decode_otlp"]
+__all__ = ["OTLP_REASONS", "decode_otlp", "encode_otlp"]
 
 #: Reasons `decode_otlp` rejects a whole message (DecodeError.reason).
 OTLP_REASONS = frozenset({
@@ -89,6 +90,34 @@ def decode_otlp(raw: bytes | bytearray | memoryview | str, limits: DecodeLimits 
                 skipped += _metric(_object(metric, f"{scope_path}.metrics[{k}]"), base, limits, samples,
                                    f"{scope_path}.metrics[{k}]")
     return samples, skipped
+
+
+def encode_otlp(resource: Mapping[str, str], samples: Iterable[Sample], *, scope: str = "shiftsieve") -> bytes:
+    """One ExportMetricsServiceRequest in the shape `decode_otlp` reads (and a collector writes): one
+    resource with string attributes ``resource``, one scope, one gauge per sample name with a point
+    per sample (attributes = its labels, ``timeUnixNano`` a decimal string, ``asDouble``; a missing
+    value is a point flagged FLAG_NO_RECORDED_VALUE, which the decoder skips). Read back, a sample
+    has labels ``resource | labels`` and the same ts (nanoseconds rounded exactly, one rounding each
+    way) and value."""
+    gauges: dict[str, list[dict[str, Any]]] = {}
+    times: dict[float, str] = {}   # the samples of one request mostly share one time
+    for sample in samples:
+        point: dict[str, Any] = {"attributes": _key_values(sample.labels)} if sample.labels else {}
+        if sample.ts not in times:
+            times[sample.ts] = str(round(Fraction(sample.ts) * _NS))
+        point["timeUnixNano"] = times[sample.ts]
+        if sample.value is None:
+            point["flags"] = _NO_RECORDED_VALUE
+        else:
+            point["asDouble"] = sample.value
+        gauges.setdefault(sample.name, []).append(point)
+    metrics = [{"name": name, "gauge": {"dataPoints": points}} for name, points in gauges.items()]
+    return orjson.dumps({"resourceMetrics": [{"resource": {"attributes": _key_values(resource)},
+                                              "scopeMetrics": [{"scope": {"name": scope}, "metrics": metrics}]}]})
+
+
+def _key_values(labels: Mapping[str, str]) -> list[dict[str, Any]]:
+    return [{"key": key, "value": {"stringValue": value}} for key, value in labels.items()]
 
 
 def _metric(metric: Mapping, base: dict[str, str], limits: DecodeLimits, out: list[Sample], path: str) -> int:

@@ -24,7 +24,6 @@ from contextlib import ExitStack
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-import orjson
 
 if TYPE_CHECKING:
     from .kafka import KafkaSettings
@@ -38,13 +37,8 @@ from .exporter import Exporter
 from .otlp import decode_otlp
 from .readers import DeadLetterWriter, Rejected
 from .replay import decode_limits
-from .samples import Sample, SampleAssembler, decode_sample
+from .samples import SampleAssembler, decode_sample, encode_sample
 from .state import SnapshotError, StateDirectory
-
-
-def _sample_message(sample: Sample) -> bytes:
-    """A refused sample as a one-sample message (what decode_sample reads), for its dead letter."""
-    return orjson.dumps({"ts": sample.ts, "name": sample.name, "labels": sample.labels, "value": sample.value})
 
 
 class LineSource:
@@ -482,7 +476,7 @@ class Service:
             done, reason = self.assembler.add(sample, (partition, number))
             vectors.extend(done)
             if reason is not None:   # late, no entity label, over a cap: counted and kept
-                self._dead_letter(number, _sample_message(sample), reason,
+                self._dead_letter(number, encode_sample(sample), reason,
                                   f"sample {sample.name!r} at ts {sample.ts} refused: {reason}")
         return vectors
 

@@ -41,6 +41,18 @@ def _unavailable(reason: str):
     pytest.skip(f"Kafka broker unavailable: {reason} (set {REQUIRE_ENV}=1 to make this a failure)")
 
 
+def required_tool(name: str) -> str:
+    """Path of a Debian-packaged tool the test needs (promtool, prometheus): skip locally when it is
+    missing, fail with SHIFTSIEVE_REQUIRE_BROKER=1 (CI, where .ci/run installs it)."""
+    path = shutil.which(name)
+    if path is None:
+        why = f"{name} not installed (Debian package prometheus; .ci/run installs it)"
+        if os.environ.get(REQUIRE_ENV, "").strip() not in ("", "0", "false", "no"):
+            pytest.fail(f"{why}, and {REQUIRE_ENV}=1", pytrace=False)
+        pytest.skip(f"{why}; set {REQUIRE_ENV}=1 to make this a failure")
+    return path
+
+
 def _executable(path: Path) -> bool:
     return path.is_file() and os.access(path, os.X_OK)
 

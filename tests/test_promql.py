@@ -5,8 +5,6 @@ import doctest
 import gzip
 import json
 import math
-import os
-import shutil
 import subprocess
 import time
 import urllib.parse
@@ -16,7 +14,7 @@ import numpy as np
 import pytest
 from prometheus_client.parser import text_string_to_metric_families
 
-from conftest import REQUIRE_ENV, free_port
+from conftest import free_port, required_tool
 from shiftsieve.stream import promql
 from shiftsieve.stream.assemble import metric_labels
 from shiftsieve.stream.cli import EXIT_USAGE, main
@@ -275,16 +273,6 @@ METRICS = ['cpu_ratio', 'http_requests_per_s{route="/crossings"}', 'http_request
            'lat_p99_ms', 'queue_depth']
 
 
-def _tool(name):
-    path = shutil.which(name)
-    if path is None:
-        why = f"{name} not installed (Debian package prometheus; .ci/run installs it)"
-        if os.environ.get(REQUIRE_ENV, "").strip() not in ("", "0", "false", "no"):
-            pytest.fail(f"{why}, and {REQUIRE_ENV}=1", pytrace=False)
-        pytest.skip(f"{why}; set {REQUIRE_ENV}=1 to make this a failure")
-    return path
-
-
 def _scenario(t0):
     """Brinehaven Ferry Line, two booking-api instances: 5 metrics driven by one traffic factor (seed 7).
 
@@ -321,7 +309,7 @@ def _openmetrics(t0, data):
 @pytest.fixture
 def prometheus_export(tmp_path):
     """A query_range export from a real Prometheus over a backfilled window: (path, t0, data)."""
-    promtool, prometheus = _tool("promtool"), _tool("prometheus")
+    promtool, prometheus = required_tool("promtool"), required_tool("prometheus")
     # Backfilled blocks must not overlap the head block (Prometheus storage docs, "Backfilling"):
     # a 2 h window ending hours ago, aligned to the 2 h block range.
     t0 = int(time.time()) // 7200 * 7200 - 6 * 3600

@@ -1,25 +1,22 @@
 """The shipped Prometheus alerting rules, checked and unit-tested by Prometheus's own promtool."""
 
-import shutil
 import subprocess
 from pathlib import Path
 
-import pytest
+from conftest import required_tool
 
 RULES = Path(__file__).parent.parent / "deploy" / "prometheus"
 
-promtool = shutil.which("promtool")
-pytestmark = pytest.mark.skipif(promtool is None, reason="promtool (Debian package prometheus) not installed; "
-                                                         ".ci/run installs it")
-
 
 def test_rules_are_valid():
-    proc = subprocess.run([promtool, "check", "rules", str(RULES / "shiftsieve-rules.yml")], capture_output=True)
+    proc = subprocess.run([required_tool("promtool"), "check", "rules", str(RULES / "shiftsieve-rules.yml")],
+                          capture_output=True)
     assert proc.returncode == 0, proc.stdout + proc.stderr
 
 
 def test_rules_unit_tests_pass():
-    proc = subprocess.run([promtool, "test", "rules", "shiftsieve-rules.test.yml"], cwd=RULES, capture_output=True)
+    proc = subprocess.run([required_tool("promtool"), "test", "rules", "shiftsieve-rules.test.yml"], cwd=RULES,
+                          capture_output=True)
     assert proc.returncode == 0, proc.stdout + proc.stderr
 
 
