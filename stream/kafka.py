@@ -84,7 +84,7 @@ def _check_host(hostport: str) -> None:
         raise ValueError(f"invalid Kafka bootstrap address {hostport!r}: expected HOST:PORT")
 
 
-def _one_line(exc: BaseException) -> str:
+def describe_error(exc: BaseException) -> str:
     """A short one-line description of an error (never contains settings)."""
     name = type(exc).__name__
     text = " ".join(str(exc).split())
@@ -337,7 +337,7 @@ class Record:
     timestamp_ms: int
 
 
-def _import_kafka():
+def import_kafka():
     import kafka  # noqa: PLC0415  (imported lazily: importing shiftsieve.stream stays cheap)
     return kafka
 
@@ -361,7 +361,7 @@ class _State:
     _LOG_EVERY_S = 10.0
 
     def fail(self, what: str, exc: BaseException | str) -> None:
-        text = exc if isinstance(exc, str) else _one_line(exc)
+        text = exc if isinstance(exc, str) else describe_error(exc)
         message = f"{what}: {text}"
         now = time.monotonic()
         with self._lock:
@@ -443,7 +443,7 @@ class KafkaSource:
             return True
         if self._closed or time.monotonic() < self._next_attempt:
             return False
-        kafka = _import_kafka()
+        kafka = import_kafka()
         kwargs = self.settings.consumer_kwargs()
         if self.settings.api_version is None and "bootstrap_timeout_ms" in kafka.KafkaConsumer.DEFAULT_CONFIG:
             # with api_version=auto the constructor talks to the broker; keep that bounded
@@ -463,7 +463,7 @@ class KafkaSource:
         return True
 
     def _make_listener(self):
-        kafka = _import_kafka()
+        kafka = import_kafka()
         source = self
         Async = getattr(kafka, "AsyncConsumerRebalanceListener", None)
         if Async is None:  # kafka-python 2.x: listeners run inside poll() on the caller's thread
@@ -589,7 +589,7 @@ class KafkaSource:
             # do not block the caller for the commit timeout: it retries after its next snapshot
             self._state.fail("commit", "not connected to the broker; offsets not committed")
             return False
-        kafka = _import_kafka()
+        kafka = import_kafka()
         from kafka.structs import OffsetAndMetadata  # noqa: PLC0415
         payload = {}
         for (topic, partition), offset in offsets.items():
@@ -670,7 +670,7 @@ class KafkaSource:
         """Next poll reads ``topic[partition]`` from ``offset`` (the partition must be assigned)."""
         if self._consumer is None or self._closed:
             raise RuntimeError("KafkaSource has no consumer (broker unreachable or closed)")
-        kafka = _import_kafka()
+        kafka = import_kafka()
         if int(offset) < 0:
             raise ValueError(f"negative offset {offset} for {topic}[{partition}]")
         self._consumer.seek(kafka.TopicPartition(topic, int(partition)), int(offset))
@@ -741,7 +741,7 @@ class KafkaSink:
             return True
         if self._closed or time.monotonic() < self._next_attempt:
             return False
-        kafka = _import_kafka()
+        kafka = import_kafka()
         kwargs = self.settings.producer_kwargs()
         if self.settings.api_version is None and "bootstrap_timeout_ms" in kafka.KafkaProducer.DEFAULT_CONFIG:
             kwargs["bootstrap_timeout_ms"] = 5000
@@ -771,7 +771,7 @@ class KafkaSink:
             with self._count_lock:
                 self.failed_total += 1
             return False
-        kafka = _import_kafka()
+        kafka = import_kafka()
         try:
             future = self._producer.send(topic, value=value, key=key, headers=headers)
         except Exception as exc:  # noqa: BLE001  (metadata timeout, message too large, closed)

@@ -263,15 +263,15 @@ class _KafkaWriter:
     reported later) is raised as one ProduceError."""
 
     def __init__(self, config: Config, brokers: str, topic: str) -> None:
-        from .kafka import KafkaSettings, _import_kafka, _one_line   # noqa: PLC0415  (kafka-python is heavy)
+        from .kafka import KafkaSettings, describe_error, import_kafka   # noqa: PLC0415  (kafka-python is heavy)
         from .service import kafka_settings   # noqa: PLC0415
-        self._one_line = _one_line
+        self.describe_error = describe_error
         try:   # the bootstrap list and topic, checked with the settings' own one-line messages
             hosts = KafkaSettings(bootstrap=brokers, topic=topic, group=_GROUP).bootstrap
         except ValueError as exc:
             raise ProduceError(str(exc)) from None
         settings = kafka_settings(config, f"kafka://{','.join(hosts)}/{topic}?group={_GROUP}")
-        self.kafka = _import_kafka()
+        self.kafka = import_kafka()
         self.topic, self.where = topic, ",".join(hosts)
         kwargs = settings.producer_kwargs()   # max_block_ms bounds every wait for metadata
         if settings.api_version is None and "bootstrap_timeout_ms" in self.kafka.KafkaProducer.DEFAULT_CONFIG:
@@ -279,12 +279,12 @@ class _KafkaWriter:
         try:
             self.producer = self.kafka.KafkaProducer(**kwargs)
         except Exception as exc:  # noqa: BLE001  (no broker answers, TLS or SASL refused)
-            raise ProduceError(f"cannot connect to Kafka at {self.where}: {_one_line(exc)}") from None
+            raise ProduceError(f"cannot connect to Kafka at {self.where}: {describe_error(exc)}") from None
         self._error: str | None = None
 
     def _failed(self, exc: BaseException) -> None:
         if self._error is None:
-            self._error = f"delivery to topic {self.topic!r} at {self.where} failed: {self._one_line(exc)}"
+            self._error = f"delivery to topic {self.topic!r} at {self.where} failed: {self.describe_error(exc)}"
 
     def send(self, key: bytes, value: bytes) -> None:
         if self._error is not None:
@@ -293,9 +293,9 @@ class _KafkaWriter:
             future = self.producer.send(self.topic, key=key, value=value)
         except self.kafka.errors.KafkaTimeoutError as exc:
             raise ProduceError(f"cannot write to topic {self.topic!r} at {self.where} "
-                               f"(broker unreachable or topic missing): {self._one_line(exc)}") from None
+                               f"(broker unreachable or topic missing): {self.describe_error(exc)}") from None
         except Exception as exc:  # noqa: BLE001  (message too large, closed producer)
-            raise ProduceError(f"cannot send to topic {self.topic!r}: {self._one_line(exc)}") from None
+            raise ProduceError(f"cannot send to topic {self.topic!r}: {self.describe_error(exc)}") from None
         future.add_errback(self._failed)
 
     def close(self, timeout_s: float = _FLUSH_SECONDS) -> None:
