@@ -42,8 +42,9 @@ class ReplaySummary:
 
     def format(self) -> str:
         reasons = ", ".join(f"{k} {v}" for k, v in sorted(self.rejected_by_reason.items()))
-        line = (f"{self.vectors} vectors, {self.entities} entities, {self.incidents} incidents "
-                f"({self.events} events) in {self.seconds:.2f} s ({self.rate:,.0f} vectors/s)")
+        line = (f"{_count(self.vectors, 'vector')}, {_count(self.entities, 'entity', 'entities')}, "
+                f"{_count(self.incidents, 'incident')} ({_count(self.events, 'event')}) in {self.seconds:.2f} s "
+                f"({self.rate:,.0f} vectors/s)")
         if self.rejected:
             line += f"; {self.rejected} lines rejected ({reasons})"
         if self.solver_unconverged:   # tolerance not reached within model.max_iter: worth knowing
@@ -51,6 +52,10 @@ class ReplaySummary:
         if self.rewarmed:
             line += "; warmed up again: " + ", ".join(f"{e} ({why})" for e, why in self.rewarmed)
         return line
+
+
+def _count(n: int, one: str, many: str | None = None) -> str:
+    return f"{n} {one if n == 1 else many or one + 's'}"
 
 
 class Progress:

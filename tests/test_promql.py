@@ -241,7 +241,7 @@ def test_replay_cli_counts_and_dead_letters_bad_items(tmp_path, capsys):
                   _series("up", [[TS, "1"]], job="ferry"))
     src, dead, events = _incident(tmp_path, doc=doc), tmp_path / "dead.jsonl", tmp_path / "ev.jsonl"
     assert main(["replay", str(src), "--events", str(events), "--dead-letter", str(dead)]) == 0
-    assert "50 vectors, 1 entities" in capsys.readouterr().err
+    assert "50 vectors, 1 entity," in capsys.readouterr().err
     letters = [json.loads(line) for line in dead.read_text().splitlines()]
     assert [(d["line"], d["reason"]) for d in letters] == [(1, "bad_ts"), (2, "no_entity")]
     assert json.loads(letters[1]["raw"]) == doc["data"]["result"][1]
