@@ -122,6 +122,24 @@ def test_pcp_localises_a_stepped_metric():
     assert others.mean() < 0.05
 
 
+def test_pcp_flag_rate_after_warm_up_is_near_false_alarm_on_low_rank_plus_noise():
+    # No fault: PCP puts the noise into S with heavy tails, so a Gaussian threshold on S flags
+    # several times the target; the empirical warm-up quantile is calibrated. Reference: the
+    # binomial variance of the count (as scipy.stats.binom) plus that of the quantile itself,
+    # estimated from N warm-up cells (variance p(1-p)/N of its exceedance rate; a standard fact
+    # about empirical quantiles), at 99 % (2.58 sd, normal approximation).
+    rng = np.random.default_rng(8)
+    T, n, warmup, false_alarm = 1500, 40, 500, 0.005
+    F = rng.standard_normal((T, 3)) @ rng.standard_normal((3, n)) * 5.0 + rng.standard_normal((T, n))
+    found = pcp_detect(F, warmup=warmup, false_alarm=false_alarm)
+    after = found.flags.active[warmup:]
+    M, N, p = after.size, warmup * n, false_alarm
+    sd = np.sqrt(binom.var(M, p) + M * M * p * (1 - p) / N)
+    assert abs(after.sum() - M * p) <= 2.58 * sd, after.mean()
+    gaussian = np.abs(found.flags.stat[warmup:]) > threshold_for(false_alarm)
+    assert gaussian.mean() > 1.5 * false_alarm   # what the calibration is for (measured 1.9x here)
+
+
 @pytest.mark.parametrize("bad", [dict(halflife=0.0), dict(halflife=10.0, false_alarm=1.5),
                                  dict(halflife=10.0, warmup=1)])
 def test_ewma_rejects_bad_settings(bad):
