@@ -66,6 +66,7 @@ class Labels:
     vectors: int
     incidents: tuple[LabelledIncident, ...]
     description: str = ""
+    surges: tuple[tuple[float, float], ...] = ()   # benign traffic surges (start, end): no fault, no alert due
 
 
 @dataclass(frozen=True)
@@ -213,8 +214,16 @@ def load_labels(path: str | Path) -> Labels:
             raise EvaluationError(f"{where}: 'shift_sigma' must map names to numbers")
         incidents.append(LabelledIncident(inc["entity"], float(inc["start"]), float(inc["end"]),
                                           tuple(metrics), dict(shift), str(inc.get("kind", "step"))))
+    surges = data.get("surges", [])
+    if not isinstance(surges, list):
+        raise EvaluationError(f"{path}: 'surges' must be a list")
+    for i, surge in enumerate(surges):
+        if not (isinstance(surge, dict) and _is_number(surge.get("start")) and _is_number(surge.get("end"))
+                and surge["start"] <= surge["end"]):
+            raise EvaluationError(f"{path}: surge {i}: 'start' and 'end' must be numbers with start <= end")
     return Labels(str(data.get("scenario", Path(path).name)), vectors, tuple(incidents),
-                  str(data.get("description", "")))
+                  str(data.get("description", "")),
+                  tuple((float(s["start"]), float(s["end"])) for s in surges))
 
 
 def predicted_incidents(events: Sequence[dict]) -> list[PredictedIncident]:

@@ -338,6 +338,7 @@ class EntityView:
     labelled: list[Window]
     labelled_metrics: list[tuple[str, ...]]   # the metrics of each labelled window
     width: int                     # scored rows per bin
+    surges: list[Window] = field(default_factory=list)   # labelled benign traffic surges (every entity)
 
 
 def choose_metrics(trace: EntityTrace, incidents: Sequence[IncidentSummary], labelled: Iterable[str],
@@ -363,7 +364,8 @@ def entity_view(trace: EntityTrace, entity: str, metrics: list[str], incidents: 
     return EntityView(entity, metrics, t, step, data[:, :, cols],
                       [Window(i.start, i.end, i.incident) for i in incidents],
                       [Window(lab.start, lab.end, ", ".join(lab.metrics)) for lab in mine],
-                      [lab.metrics for lab in mine], trace.width)
+                      [lab.metrics for lab in mine], trace.width,
+                      [Window(start, end, "traffic surge") for start, end in (labels.surges if labels else ())])
 
 
 # --- figures ------------------------------------------------------------------------------
@@ -374,6 +376,7 @@ EXPECTED_COLOUR = "#E69F00"
 INCIDENT_COLOUR = "#D55E00"
 LABEL_COLOUR = "#009E73"
 BAND_COLOUR = "#999999"
+SURGE_COLOUR = "#56B4E9"
 STYLE = {"font.size": 10, "axes.titlesize": 10, "axes.labelsize": 10, "legend.fontsize": 9,
          "xtick.labelsize": 9, "ytick.labelsize": 9, "axes.spines.top": False, "axes.spines.right": False,
          "timezone": "UTC", "savefig.dpi": 100}
@@ -398,7 +401,10 @@ def _time_axis(ax) -> None:
 
 def _windows(ax, view: EntityView) -> None:
     """Alerted incidents shaded at full height; labelled faults as a hatched bar along the top with
-    outlined edges, so the two stay distinct where they overlap."""
+    outlined edges, so the two stay distinct where they overlap; labelled traffic surges (no fault)
+    as a light band behind everything."""
+    for w in view.surges:
+        ax.axvspan(*_dates([w.start, w.end]), color=SURGE_COLOUR, alpha=0.15, lw=0, zorder=0)
     for w in view.incidents:
         ax.axvspan(*_dates([w.start, w.end]), color=INCIDENT_COLOUR, alpha=0.15, lw=0, zorder=0)
     for w in view.labelled:
@@ -410,8 +416,9 @@ def _windows(ax, view: EntityView) -> None:
 
 
 def _strip(ax, view: EntityView) -> None:
-    """The heatmap's timeline: one row of alerted incidents, one of labelled faults."""
-    rows = ["alerted"] + (["labelled"] if view.labelled else [])
+    """The heatmap's timeline: one row of alerted incidents, one of labelled faults, one of labelled
+    traffic surges (the last two when the labels have any)."""
+    rows = ["alerted"] + (["labelled"] if view.labelled else []) + (["surge"] if view.surges else [])
     ax.set_ylim(len(rows), 0)
     ax.set_yticks(np.arange(len(rows)) + 0.5, rows)
     ax.tick_params(axis="x", which="both", bottom=False, labelbottom=False)
@@ -420,9 +427,14 @@ def _strip(ax, view: EntityView) -> None:
     for w in view.incidents:
         ax.axvspan(*_dates([w.start, w.end]), ymin=1 - 1 / len(rows), ymax=1.0, color=INCIDENT_COLOUR,
                    alpha=0.8, lw=0)
+    def band(row: int) -> dict:   # axvspan's y range of one row (rows run top to bottom)
+        return {"ymin": 1 - (row + 1) / len(rows), "ymax": 1 - row / len(rows)}
+
     for w in view.labelled:
-        ax.axvspan(*_dates([w.start, w.end]), ymin=0.0, ymax=0.5, facecolor="white", edgecolor=LABEL_COLOUR,
-                   hatch="////", lw=1.0)
+        ax.axvspan(*_dates([w.start, w.end]), **band(rows.index("labelled")), facecolor="white",
+                   edgecolor=LABEL_COLOUR, hatch="////", lw=1.0)
+    for w in view.surges:
+        ax.axvspan(*_dates([w.start, w.end]), **band(rows.index("surge")), color=SURGE_COLOUR, alpha=0.6, lw=0)
 
 
 def _figure(height: float):
@@ -442,6 +454,9 @@ def _legend_handles(view: EntityView, with_lines: bool, solid: bool = False) -> 
         handles.append(Patch(facecolor=INCIDENT_COLOUR, alpha=0.8 if solid else 0.25, label="alerted incident"))
     if view.labelled:
         handles.append(Patch(facecolor="white", edgecolor=LABEL_COLOUR, hatch="////", label="labelled fault"))
+    if view.surges:
+        handles.append(Patch(facecolor=SURGE_COLOUR, alpha=0.6 if solid else 0.3,
+                             label="labelled traffic surge (no fault)"))
     return handles
 
 
@@ -470,7 +485,8 @@ def draw_heatmap(view: EntityView, path: Path, threshold: float, emphasise: Iter
     labelled = {m for names in view.labelled_metrics for m in names}
     with matplotlib.rc_context(STYLE):
         fig = _figure(1.5 + 0.3 * k)
-        strip, ax = fig.subplots(2, 1, sharex=True, height_ratios=[0.2 * (1 + bool(view.labelled)), 0.3 * k])
+        timeline_rows = 1 + bool(view.labelled) + bool(view.surges)
+        strip, ax = fig.subplots(2, 1, sharex=True, height_ratios=[0.2 * timeline_rows, 0.3 * k])
         shift, t_cols = _columns(view.values[SHIFT], view.t, HEATMAP_COLUMNS)
         moved = np.abs(shift[np.isfinite(shift)])
         limit = max(10.0, float(moved.max(initial=0.0)))
@@ -809,7 +825,8 @@ def _band_caption(trace: EntityTrace, view: EntityView) -> str:
 
 def _windows_caption(view: EntityView) -> str:
     parts = (["shaded: alerted incidents"] if view.incidents else []) + \
-        (["hatched bar along the top (dashed edges in traces): labelled faults"] if view.labelled else [])
+        (["hatched bar along the top (dashed edges in traces): labelled faults"] if view.labelled else []) + \
+        (["light blue: labelled traffic surges, where nothing should fire"] if view.surges else [])
     text = "; ".join(parts)
     return f"{text[:1].upper()}{text[1:]}." if parts else ""
 

@@ -153,6 +153,8 @@ def test_bad_event_lines(tmp_path: Path, lines: list[bytes], where: str, reason:
     ('{"incidents": []}', "'vectors'"),
     ('{"vectors": 10, "incidents": [{"entity": "a", "start": 5, "end": 1, "metrics": ["m"]}]}', "incident 0"),
     ('{"vectors": 10, "incidents": [{"entity": "a", "start": 1, "end": 5, "metrics": []}]}', "'metrics'"),
+    ('{"vectors": 10, "incidents": [], "surges": {"start": 1}}', "'surges' must be a list"),
+    ('{"vectors": 10, "incidents": [], "surges": [{"start": 9, "end": 1}]}', "surge 0"),
 ])
 def test_bad_labels(tmp_path: Path, text: str, reason: str) -> None:
     path = tmp_path / "x.labels.json"

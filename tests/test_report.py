@@ -184,6 +184,11 @@ def test_surge_report_says_nothing_fired(surge_and_bounded, tmp_path):
     text = index.read_text(encoding="utf-8")
     assert "Nothing fired." in text
     assert len(page.images) == 2 * report.QUIET_ENTITIES   # the top metrics are shown anyway
+    # the labels file's benign traffic surge is drawn on every entity's figures (figure data)
+    (start, end), = labels.surges
+    entity = next(iter(free.traces))
+    view = report.entity_view(free.traces[entity], entity, [], [], labels)
+    assert [(w.start, w.end) for w in view.surges] == [(start, end)] and "traffic surges" in text
     assert all((index.parent / src).stat().st_size > 0 for src in page.images)
 
 
