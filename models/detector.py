@@ -37,7 +37,8 @@ from .decision import QUIET, AlertTracker, DecisionConfig, Transition
 from .dictionary import build_dictionary, column_scales, metric_effect
 from .lasso import projected_residual, refit_solution, solve_projected_lasso
 from .mmv import MMVResult, group_lasso_mmv, msbl
-from .normaliser import MAD_TO_SIGMA, RobustNormaliser, column_median, decay_for_halflife, symlog, to_metric_units
+from .normaliser import (MAD_TO_SIGMA, RobustNormaliser, column_median, decay_for_halflife, from_metric_units,
+                         to_metric_units)
 from .subspace import SubspaceTracker, impute_low_rank
 
 
@@ -176,10 +177,7 @@ class BatchResult:
         if self.units is None:
             raise ValueError("no units: the batch was collected for warm-up, not scored")
         u = self.units
-        F = np.array(X, dtype=float)
-        if u.log_mask.any():
-            F[:, u.log_mask] = symlog(F[:, u.log_mask])
-        Z = np.clip((F - u.loc) / u.scale, -EntityDetector.Z_LIMIT, EntityDetector.Z_LIMIT)
+        Z = np.clip(from_metric_units(X, u.loc, u.scale, u.log_mask), -EntityDetector.Z_LIMIT, EntityDetector.Z_LIMIT)
         mask = np.isfinite(Z) & u.modelled
         residual, _ = projected_residual(Z, u.basis, np.zeros_like(Z), mask=None if mask.all() else mask)
         limit = EntityDetector.WINDOW_LIMIT
@@ -481,12 +479,10 @@ class EntityDetector:
         # correlated with the window (sure independence screening, Fan & Lv 2008) and never
         # revives the others (zero gammas stay pruned). Rankings go no deeper than the top ten.
         correlation = np.linalg.norm(A.T @ Y.T, axis=1)
-        gamma = np.zeros(A.shape[1])   # kept columns start where msbl's own default starts them
-        start = float(np.vdot(Y, Y)) / Y.size / (float(np.mean(np.einsum("ij,ij->j", A, A))) or 1.0)
-        gamma[np.argsort(-correlation, kind="stable")[: self.WINDOW_CANDIDATES]] = start or 1.0
+        candidates = np.argsort(-correlation, kind="stable")[: self.WINDOW_CANDIDATES]
         return WindowLocalisation(columns,
                                   group_lasso_mmv(A, Y.T, lam, tol=tol, max_iter=max_iter),
-                                  msbl(A, Y.T, noise_var=1.0, tol=tol, max_iter=max_iter, gamma_init=gamma),
+                                  msbl(A, Y.T, noise_var=1.0, tol=tol, max_iter=max_iter, candidates=candidates),
                                   lam, Y.shape[0])
 
     def _learn(self, cleaned: np.ndarray, present: np.ndarray, mask: np.ndarray | None, effect: np.ndarray,

@@ -240,6 +240,7 @@ def msbl(
     prune: float = 1e-8,
     check_input: bool = True,
     gamma_init: np.ndarray | None = None,
+    candidates: np.ndarray | None = None,
     update: str = "em",
 ) -> MMVResult:
     """M-SBL (Wipf & Rao 2007): EM on the hyperparameters gamma of X_i,: ~ N(0, gamma_i I); no lambda.
@@ -265,7 +266,9 @@ def msbl(
     1e-10 of it; on nearly noiseless data give it instead, the learned value
     shrinks slowly. ``gamma_init`` (m,) warm-starts (zeros stay pruned); the
     default gives every row the mean power of Y over the mean squared column
-    norm of A.
+    norm of A. ``candidates`` (indices, with the default start only) screens: only
+    those rows start there, the others start pruned (e.g. the columns most
+    correlated with Y, which bounds the cost per iteration).
 
     >>> import numpy as np
     >>> A, Y = np.eye(3), np.array([[5.0], [0.1], [0.0]])
@@ -291,8 +294,18 @@ def msbl(
                        noise_var=float(noise_var) if noise_var is not None else 0.0)
 
     col_sq = np.einsum("ij,ij->j", A, A)
+    if candidates is not None and gamma_init is not None:
+        raise ValueError("give gamma_init or candidates, not both")
     if gamma_init is None:
         gamma = np.full(m, power / (float(np.mean(col_sq)) or 1.0))
+        if candidates is not None:
+            index = np.asarray(candidates)
+            if index.ndim != 1 or index.size == 0 or not np.issubdtype(index.dtype, np.integer) \
+                    or index.min() < 0 or index.max() >= m:
+                raise ValueError(f"candidates must be a non-empty 1-d array of column indices in 0..{m - 1}")
+            keep = np.zeros(m, dtype=bool)
+            keep[index] = True
+            gamma[~keep] = 0.0
     else:
         gamma = _as_float_array(gamma_init, "gamma_init", (1,)).copy()
         if gamma.shape != (m,):

@@ -31,6 +31,23 @@ def symexp(y: np.ndarray) -> np.ndarray:
     return np.sign(y) * np.expm1(np.abs(y))
 
 
+def _log_scaled(X: np.ndarray, log_mask: np.ndarray) -> np.ndarray:
+    """A fresh float copy of ``X`` with the ``log_mask`` metrics on the symmetric-log scale."""
+    F = np.array(X, dtype=float)
+    if log_mask.any():
+        F[..., log_mask] = symlog(F[..., log_mask])
+    return F
+
+
+def from_metric_units(X: np.ndarray, loc: np.ndarray, scale: np.ndarray, log_mask: np.ndarray) -> np.ndarray:
+    """Metric values to normalised units for a given location/scale/log mask (a fresh array;
+    missing stays NaN): the inverse of :func:`to_metric_units`."""
+    F = _log_scaled(X, log_mask)   # normalised in place
+    F -= loc
+    F /= scale
+    return F
+
+
 def to_metric_units(Z: np.ndarray, loc: np.ndarray, scale: np.ndarray, log_mask: np.ndarray) -> np.ndarray:
     """Normalised values back to the metrics' own units for a given location/scale/log mask."""
     F = loc + np.asarray(Z, dtype=float) * scale
@@ -111,10 +128,7 @@ class RobustNormaliser:
         return self.log_mask.size
 
     def _forward(self, X: np.ndarray) -> np.ndarray:
-        X = np.array(X, dtype=float)
-        if self.log_mask.any():
-            X[..., self.log_mask] = symlog(X[..., self.log_mask])
-        return X
+        return _log_scaled(X, self.log_mask)
 
     def _floor(self, scale: np.ndarray, loc: np.ndarray) -> np.ndarray:
         return np.maximum(scale, np.maximum(self.min_scale, 1e-6 * np.abs(loc)))
@@ -137,10 +151,7 @@ class RobustNormaliser:
 
     def transform(self, X: np.ndarray) -> np.ndarray:
         """Normalised values (B, n); missing stays NaN."""
-        F = self._forward(X)   # a fresh array: normalised in place
-        F -= self.loc
-        F /= self.scale
-        return F
+        return from_metric_units(X, self.loc, self.scale, self.log_mask)
 
     def inverse(self, Z: np.ndarray) -> np.ndarray:
         """Map normalised values back to the metrics' own units."""

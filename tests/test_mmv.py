@@ -287,6 +287,8 @@ def test_rank_rows_orders_by_norm_then_name():
     (lambda A, Y: msbl(A, Y, update="fast"), "update must be"),
     (lambda A, Y: msbl(A, Y + np.inf), "Y contains NaN"),
     (lambda A, Y: msbl(A, Y, gamma_init=-np.ones(A.shape[1])), "gamma_init must be finite"),
+    (lambda A, Y: msbl(A, Y, candidates=np.array([0, A.shape[1]])), "candidates must be"),
+    (lambda A, Y: msbl(A, Y, candidates=np.array([0]), gamma_init=np.ones(A.shape[1])), "not both"),
     (lambda A, Y: rank_rows(msbl(A, Y), ["x"]), "names has 1 entries"),
     (lambda A, Y: rank_rows(msbl(A, Y), [str(i) for i in range(A.shape[1])], k=-1), "k must be"),
 ])
@@ -295,3 +297,17 @@ def test_bad_input_is_a_clear_value_error(call, message):
     with pytest.raises(ValueError, match=message):
         call(A, Y)
 
+
+
+def test_screening_candidates_start_as_the_default_and_prune_the_rest():
+    # Equivalent to a warm start at the default value on the candidate rows and zero elsewhere
+    # (zeros stay pruned: the documented gamma_init rule); the default is mean power of Y over
+    # the mean squared column norm of A.
+    A, Y = _problem(21, n=20, m=40, L=3)
+    keep = np.array([1, 5, 7, 30])
+    start = np.zeros(A.shape[1])
+    start[keep] = float(np.vdot(Y, Y)) / Y.size / float(np.mean(np.sum(A * A, axis=0)))
+    screened = msbl(A, Y, noise_var=1.0, candidates=keep)
+    warm = msbl(A, Y, noise_var=1.0, gamma_init=start)
+    np.testing.assert_allclose(screened.gamma, warm.gamma)
+    assert np.all(screened.gamma[np.setdiff1d(np.arange(A.shape[1]), keep)] == 0.0)
