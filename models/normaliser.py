@@ -31,7 +31,7 @@ def symexp(y: np.ndarray) -> np.ndarray:
     return np.sign(y) * np.expm1(np.abs(y))
 
 
-def _log_scaled(X: np.ndarray, log_mask: np.ndarray) -> np.ndarray:
+def log_scaled(X: np.ndarray, log_mask: np.ndarray) -> np.ndarray:
     """A fresh float copy of ``X`` with the ``log_mask`` metrics on the symmetric-log scale."""
     F = np.array(X, dtype=float)
     if log_mask.any():
@@ -42,7 +42,7 @@ def _log_scaled(X: np.ndarray, log_mask: np.ndarray) -> np.ndarray:
 def from_metric_units(X: np.ndarray, loc: np.ndarray, scale: np.ndarray, log_mask: np.ndarray) -> np.ndarray:
     """Metric values to normalised units for a given location/scale/log mask (a fresh array;
     missing stays NaN): the inverse of :func:`to_metric_units`."""
-    F = _log_scaled(X, log_mask)   # normalised in place
+    F = log_scaled(X, log_mask)   # normalised in place
     F -= loc
     F /= scale
     return F
@@ -128,7 +128,7 @@ class RobustNormaliser:
         return self.log_mask.size
 
     def _forward(self, X: np.ndarray) -> np.ndarray:
-        return _log_scaled(X, self.log_mask)
+        return log_scaled(X, self.log_mask)
 
     def _floor(self, scale: np.ndarray, loc: np.ndarray) -> np.ndarray:
         return np.maximum(scale, np.maximum(self.min_scale, 1e-6 * np.abs(loc)))

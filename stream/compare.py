@@ -28,7 +28,7 @@ import numpy as np
 
 from shiftsieve.models.baselines import EWMAZScore, Flags, HalfSpaceTreesDetector, pcp_detect
 from shiftsieve.models.decision import AlertTracker
-from shiftsieve.models.normaliser import symexp, symlog
+from shiftsieve.models.normaliser import log_scaled, symexp
 
 from .assemble import EntityStream
 from .config import Config
@@ -123,9 +123,7 @@ def _entities(vectors: list[Vector], engine: Engine) -> list[_Entity]:
 
 
 def _model_scale(e: _Entity) -> np.ndarray:
-    F = np.array(e.X, dtype=float)
-    F[:, e.log_mask] = symlog(F[:, e.log_mask])
-    return F
+    return log_scaled(e.X, e.log_mask)
 
 
 def _events(e: _Entity, flags: Flags, start: int, config: Config, whole_vector: bool = False) -> list[dict]:

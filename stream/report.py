@@ -40,7 +40,7 @@ from typing import TYPE_CHECKING, Any, Iterable, Sequence
 
 import numpy as np
 
-from shiftsieve.models.detector import BatchResult, EntityDetector
+from shiftsieve.models.detector import BatchResult
 from shiftsieve.models.normaliser import to_metric_units
 
 from .decode import _iso as rfc3339
@@ -214,8 +214,7 @@ def batch_rows(stream: "EntityStream", X: np.ndarray, result: BatchResult) -> tu
     Xs = X[scored_rows]
     E = result.coords[scored_rows] @ u.basis.T
     half = det.lam * u.residual_scale
-    leverage = np.einsum("ij,ij->i", det.baseline.U, det.baseline.U)
-    scored = (det.normaliser.count >= det.config.warmup) & (leverage <= EntityDetector.MAX_SCORED_LEVERAGE)
+    scored = det.scored_columns()[: X.shape[1]]   # the metric columns (groups come after them)
     rows = np.empty((CHANNELS,) + Xs.shape, np.float32)
     rows[SHIFT] = np.where(scored & np.isfinite(Xs), result.shift_sigma[scored_rows], np.nan)
     rows[OBSERVED_LO] = rows[OBSERVED_HI] = Xs
