@@ -23,6 +23,7 @@ import sys
 import orjson
 
 from .config import ENCODINGS, ConfigError, load_config, render
+from .demo import DEFAULT_SCENARIO
 from .evaluate import EvaluationError, evaluate, format_table, load_events, load_labels
 from .readers import InputError
 from .replay import replay
@@ -37,8 +38,8 @@ def _parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     demo = sub.add_parser("demo", help="replay a bundled incident and print its alerts (no broker needed)")
-    demo.add_argument("--scenario", default="single_shift",
-                      help="bundled incident to replay (default: single_shift; see --list)")
+    demo.add_argument("--scenario", default=DEFAULT_SCENARIO,
+                      help=f"bundled incident to replay (default: {DEFAULT_SCENARIO}; see --list)")
     demo.add_argument("--list", action="store_true", help="list the bundled incidents and exit")
     demo.add_argument("--events", metavar="FILE", help="also write the alert events as JSON lines")
     demo.add_argument("--config", metavar="FILE", help="TOML configuration")
@@ -98,7 +99,7 @@ def _parser() -> argparse.ArgumentParser:
     prod.add_argument("--encoding", choices=ENCODINGS,
                       help="message encoding (default: source.encoding of the configuration)")
     what = prod.add_mutually_exclusive_group()
-    what.add_argument("--scenario", metavar="NAME", help="bundled incident (default: single_shift; see demo --list)")
+    what.add_argument("--scenario", metavar="NAME", help=f"bundled incident (default: {DEFAULT_SCENARIO}; see demo --list)")
     what.add_argument("--input", metavar="FILE", help="any replay input (.jsonl, .jsonl.gz, .csv(.gz), .json(.gz))")
     prod.add_argument("--speedup", metavar="X", default="0", help="send event time X times faster than real time "
                       "(60: a minute of data per second); 0 or max: as fast as possible (default)")

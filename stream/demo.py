@@ -16,6 +16,8 @@ from .replay import replay
 LABELS_SUFFIX = ".labels.json"
 MAX_ROWS = 8   # metrics shown per event; the events file has them all
 
+DEFAULT_SCENARIO = "single_shift"   # what `shiftsieve demo` and `shiftsieve produce` use by default
+
 
 def _bundle() -> Path:
     return Path(str(resources.files("shiftsieve.replay_data")))

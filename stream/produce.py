@@ -70,7 +70,6 @@ from .samples import Sample, encode_sample
 __all__ = ["ENCODINGS", "Pacer", "ProduceError", "ProduceSummary", "encode_messages", "entity_labels_for",
            "parse_speedup", "produce", "run_produce"]
 
-DEFAULT_SCENARIO = "single_shift"   # as `shiftsieve demo`
 _GROUP = "shiftsieve-produce"       # required by the settings' URL form; a producer joins no group
 _SLICE_SECONDS = 0.2                # longest single sleep, so a stop request is seen promptly
 _FLUSH_SECONDS = 10.0
@@ -247,10 +246,10 @@ def produce(open_records: Callable[[], Iterator[Vector | Rejected]], send: Send,
 
 
 def source_path(scenario: str | None, input_path: str | None) -> Path:
-    """The file to produce: ``--input``, else the bundled incident ``scenario`` (default single_shift)."""
+    """The file to produce: ``--input``, else the bundled incident ``scenario`` (default: demo's)."""
     if input_path is not None:
         return Path(input_path)
-    from .demo import scenarios   # noqa: PLC0415  (demo pulls in evaluation; only needed here)
+    from .demo import DEFAULT_SCENARIO, scenarios   # noqa: PLC0415  (demo pulls in evaluation; only needed here)
     available = scenarios()
     name = scenario or DEFAULT_SCENARIO
     if name not in available:
