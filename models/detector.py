@@ -31,7 +31,7 @@ from dataclasses import dataclass, field, replace
 from typing import NamedTuple
 
 import numpy as np
-from scipy.special import chdtri, ndtri
+from scipy.special import chdtri, erf, ndtri
 
 from .decision import QUIET, AlertTracker, DecisionConfig, Transition
 from .dictionary import build_dictionary, column_scales, metric_effect
@@ -40,6 +40,7 @@ from .mmv import MMVResult, group_lasso_mmv, msbl
 from .normaliser import (MAD_TO_SIGMA, RobustNormaliser, column_median, decay_for_halflife, from_metric_units,
                          to_metric_units)
 from .subspace import SubspaceTracker, impute_low_rank
+from .tail import tail_quantile
 
 
 def threshold_for(false_alarm: float) -> float:
@@ -68,15 +69,20 @@ def window_threshold(false_alarm: float, rows: int) -> float:
     return float(np.sqrt(chdtri(rows, false_alarm)))
 
 
-def truncated_second_moment(c: float) -> float:
+def truncated_second_moment(c: float | np.ndarray) -> float | np.ndarray:
     """``E[X^2 | |X| < c]`` for standard normal X: ``1 - 2 c phi(c) / (2 Phi(c) - 1)``.
 
     Residual scales are estimated from the samples the LASSO did not select, i.e. with
     ``|residual| < lambda d``; their mean square underestimates ``d^2`` by this factor.
+
+    >>> round(float(truncated_second_moment(50.0)), 12)
+    1.0
     """
-    inside = math.erf(c / math.sqrt(2.0))  # P(|X| < c)
-    density = math.exp(-0.5 * c * c) / math.sqrt(2.0 * math.pi)
-    return 1.0 - 2.0 * c * density / inside
+    c = np.asarray(c, dtype=float)
+    inside = erf(c / math.sqrt(2.0))  # P(|X| < c)
+    density = np.exp(-0.5 * c * c) / math.sqrt(2.0 * math.pi)
+    moment = 1.0 - 2.0 * c * density / inside
+    return float(moment) if moment.ndim == 0 else moment
 
 
 @dataclass(frozen=True)
@@ -121,7 +127,7 @@ class BatchUnits(NamedTuple):
     loc: np.ndarray              # normaliser location (n,)
     scale: np.ndarray            # normaliser scale (n,)
     log_mask: np.ndarray         # (n,) bool
-    residual_scale: np.ndarray   # d (n,)
+    residual_scale: np.ndarray   # alert scale d kappa (n,): residual sigmas as reported
     modelled: np.ndarray         # (n,) bool, metrics the basis knows
 
 
@@ -208,13 +214,13 @@ class EntityDetector:
         self.config = config
         self.lam = config.threshold
         self._scale_decay = decay_for_halflife(config.scale_halflife)
-        self._truncated_moment = truncated_second_moment(self.lam)
         self.normaliser = RobustNormaliser(np.asarray(log_mask, bool), halflife=config.normaliser_halflife,
                                            settle=config.min_samples)
         self.baseline = SubspaceTracker(rank=config.rank, energy=config.energy, max_rank=config.max_rank,
                                         halflife=config.baseline_halflife)
         self.tracker = AlertTracker(n_metrics, config.decision)
         self.residual_scale = np.ones(n_metrics)
+        self.tail_factor = np.ones(n_metrics)
         self.warm_start = np.zeros(n_metrics)
         self.set_groups(list(groups or []))
         self._warmup_rows: list[np.ndarray] = []
@@ -256,6 +262,7 @@ class EntityDetector:
         self.baseline.extend(k)
         self.tracker.extend(k)
         self.residual_scale = np.concatenate([self.residual_scale, np.ones(k)])
+        self.tail_factor = np.concatenate([self.tail_factor, np.ones(k)])
         self.admitted = np.concatenate([self.admitted, np.zeros(k, dtype=bool)])
         self.warm_start = np.concatenate([self.warm_start[: self.n_metrics - k], np.zeros(k)])
         self.set_groups(self.groups)   # same members; the dictionary grows by k identity columns
@@ -267,6 +274,7 @@ class EntityDetector:
         self.baseline.keep(index)
         self.tracker.keep(index)   # metric columns only: group states go, set_groups re-adds them
         self.residual_scale = self.residual_scale[index]
+        self.tail_factor = self.tail_factor[index]
         self.admitted = self.admitted[index]
         self.warm_start = self.warm_start[index]
         renumber = {int(old): new for new, old in enumerate(index)}
@@ -301,16 +309,37 @@ class EntityDetector:
         usable = norm.count >= self.config.min_samples
         self.admitted = usable.copy()
         Z = np.where(usable, norm.transform(W), np.nan).clip(-self.WARMUP_CLIP, self.WARMUP_CLIP)
+        # Fit twice: the second time in units of each metric's noise, the error of predicting it
+        # from the others (a weighted PCA: the maximum-likelihood fit of a factor model with
+        # heteroscedastic noise). In robust-sigma units alone a metric with little shared movement
+        # has far more noise than one that moves with traffic, and its noise claims a direction.
         self.baseline.fit(Z)
-        self.residual_scale = self._warmup_residual_scale(Z, self.baseline)
+        noise = self._prediction_noise(Z, self.baseline)
+        typical = float(np.median(noise[usable])) if usable.any() else 0.0
+        if typical > 0:   # 0: the baseline explains (nearly) everything, there is no noise to weigh by
+            norm.rescale(np.where(usable & (noise > 0), noise / typical, 1.0))
+        Z = np.where(usable, norm.transform(W), np.nan).clip(-self.WARMUP_CLIP, self.WARMUP_CLIP)
+        self.baseline.fit(Z)
+        self.residual_scale, self.tail_factor = self._warmup_residual_scale(Z, self.baseline, self.config.false_alarm,
+                                                                            norm.quantisation_noise())
 
-    #: Metrics whose leverage exceeds this are not scored (see _decide): the baseline has a
-    #: direction of their own and leaves them less than 15 % of their noise as residual.
-    MAX_SCORED_LEVERAGE = 0.98
+    #: Metrics whose leverage exceeds this are neither selected nor scored (see _score_and_learn):
+    #: the baseline has a direction mostly their own, leaves them less than a fifth of their noise
+    #: variance as residual, and a least-squares refit would amplify that residual fivefold or more
+    #: and swing the coordinates (seen on the bundled multi_shift: leverages 0.955-0.972 gave
+    #: 100-sigma "shifts" of flat metrics).
+    MAX_SCORED_LEVERAGE = 0.8
     #: Warm-up values beyond this many robust sigmas are clipped, so a wild outlier of the warm-up
     #: cannot own a baseline direction; recurring patterns such as batch jobs stay below it and are
     #: learned (clipping them harder would bend their direction).
     WARMUP_CLIP = 50.0
+    #: Cap on the tail factor: a metric whose residual tail asks for more than this many times
+    #: the Gaussian threshold is still judged (its shifts must be very large to alert).
+    MAX_TAIL_FACTOR = 10.0
+    #: Tail factors below this are estimation noise, not a heavy tail: on 540 Gaussian samples the
+    #: POT estimate of the 1e-3 quantile over lambda has 5/50/95/99th percentiles 0.85, 1.00,
+    #: 1.18 and 1.28 (measured, 4,000 columns), so a Gaussian metric keeps kappa = 1 in ~98 %.
+    MIN_TAIL_FACTOR = 1.25
 
     #: Columns M-SBL starts from in a joint-window localisation (the most correlated with the
     #: window). Measured on bench_service's stream (n = 200, 12 events): the localisation went
@@ -330,19 +359,50 @@ class EntityDetector:
         """Whether every learned array is finite (a False here means the entity must warm up again)."""
         norm = self.normaliser
         return all(np.isfinite(a).all() for a in (self.baseline.U, self.baseline.singular_values, norm.loc,
-                                                   norm.scale, self.residual_scale, self.warm_start,
+                                                   norm.scale, self.residual_scale, self.tail_factor, self.warm_start,
                                                    self.tracker.peak_shift))
 
     @staticmethod
-    def _warmup_residual_scale(Z: np.ndarray, tracker: SubspaceTracker) -> np.ndarray:
-        """Robust per-metric scale of in-sample residuals, corrected for the r fitted directions."""
+    def _prediction_noise(Z: np.ndarray, tracker: SubspaceTracker) -> np.ndarray:
+        """Per metric the robust scale of its error when predicted from the other metrics through
+        the basis: the in-sample residual's MAD over ``1 - leverage`` (a direction a metric owns
+        predicts nothing about it; leave-one-out algebra of projections)."""
+        filled = impute_low_rank(Z, tracker.rank)
+        R = np.where(np.isfinite(Z), filled - (filled @ tracker.U) @ tracker.U.T, np.nan)
+        leverage = np.einsum("ij,ij->i", tracker.U, tracker.U)
+        with warnings.catch_warnings():   # metrics absent from the warm-up: all-NaN columns
+            warnings.simplefilter("ignore", RuntimeWarning)
+            mad = MAD_TO_SIGMA * column_median(np.abs(R))
+        return np.where(np.isfinite(mad), mad / np.maximum(1.0 - leverage, 0.01), 0.0)
+
+    @staticmethod
+    def _warmup_residual_scale(Z: np.ndarray, tracker: SubspaceTracker, false_alarm: float,
+                               floor: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Robust per-metric scale ``d`` of in-sample residuals, corrected for the r fitted
+        directions and never below ``floor`` (the quantisation noise), and the tail factor ``kappa >= 1``: how much higher than ``lambda d`` the
+        residual's own ``1 - false_alarm`` quantile lies (:func:`.tail.tail_quantile`).
+
+        Alerts are judged on ``d kappa``, so a metric whose residuals are heavy-tailed, bursty or
+        discrete is flagged at the target rate instead of on every burst; ``kappa`` is never below
+        1 (no metric is judged more sensitively than the Gaussian target says), and is 1 unless
+        the tail is clearly heavier than a Gaussian's (``MIN_TAIL_FACTOR``).
+        """
         filled = impute_low_rank(Z, tracker.rank)
         R = np.where(np.isfinite(Z), filled - (filled @ tracker.U) @ tracker.U.T, np.nan)
         W = Z.shape[0]
         with warnings.catch_warnings():   # metrics absent from the warm-up: all-NaN columns
             warnings.simplefilter("ignore", RuntimeWarning)
             mad = MAD_TO_SIGMA * column_median(np.abs(R)) * math.sqrt(W / max(W - tracker.rank, 1))
-        return np.where(np.isfinite(mad) & (mad > 1e-9), mad, 1.0)
+        d = np.maximum(np.where(np.isfinite(mad) & (mad > 1e-9), mad, 1.0), floor)
+        quantile = tail_quantile(R / d, false_alarm)
+        kappa = np.where(np.isfinite(quantile), quantile / threshold_for(false_alarm), 1.0)
+        kappa = np.where(kappa >= EntityDetector.MIN_TAIL_FACTOR, kappa, 1.0)
+        return d, np.minimum(kappa, EntityDetector.MAX_TAIL_FACTOR)
+
+    @property
+    def alert_scale(self) -> np.ndarray:
+        """Per metric ``d kappa``: the residual sigma alerts and reported shifts are measured in."""
+        return self.residual_scale * self.tail_factor
 
     def _empty(self, B: int) -> BatchResult:
         return BatchResult([], np.zeros((B, self.n_metrics)), np.zeros((B, self.baseline.rank)), np.zeros(B),
@@ -351,7 +411,8 @@ class EntityDetector:
     def _score_and_learn(self, X: np.ndarray, ts: np.ndarray, leading: int = 0) -> BatchResult:
         cfg = self.config
         norm, U, phi = self.normaliser, self.baseline.U, self.phi
-        units = BatchUnits(U, norm.loc, norm.scale, norm.log_mask, self.residual_scale, self.admitted)
+        alert_scale = self.alert_scale
+        units = BatchUnits(U, norm.loc, norm.scale, norm.log_mask, alert_scale, self.admitted)
         B, n = X.shape
         Z = norm.transform(X)
         np.clip(Z, -self.Z_LIMIT, self.Z_LIMIT, out=Z)   # NaN (missing) stays NaN
@@ -360,9 +421,12 @@ class EntityDetector:
         settled = norm.count >= cfg.min_samples        # their units are fixed (see _fold_in)
         # mask None = every entry observed: the common case, which skips all masking passes.
         mask = None if modelled.all() and present.all() else present & modelled
-        penalty = self.lam * column_scales(self.residual_scale, phi)
+        penalty = self.lam * column_scales(alert_scale, phi)
         if phi is not None:
             penalty[n:] *= cfg.group_weight
+        # A metric the baseline explains by itself is not selected: the refit would amplify its
+        # residual by 1 / (1 - leverage) and swing the coordinates, moving every expected value.
+        penalty[:n][self.leverage() > self.MAX_SCORED_LEVERAGE] = np.inf
         Zo = Z if mask is None else np.where(mask, Z, 0.0)   # the solver fixes unobserved columns at 0
         fit = solve_projected_lasso(Zo, U, penalty, phi=phi, mask=mask, init=self.warm_start, tol=cfg.tol,
                                     max_iter=cfg.max_iter, lipschitz=self._lipschitz, check_input=False)
@@ -377,7 +441,7 @@ class EntityDetector:
             coords = coords.copy()
             coords[support] = coords_rows
             effect[support] = effect_rows = metric_effect(coef_rows, phi)
-            shift_sigma[support] = effect_rows / self.residual_scale   # zero wherever unobserved
+            shift_sigma[support] = effect_rows / alert_scale   # zero wherever unobserved
             Z[support] -= effect_rows   # Z is ours: from here on it is the cleaned signal
         transitions = self._decide(X, ts, support, coef_rows, fit.coef, fit.residual, coords, shift_sigma)
         squares = fit.residual * fit.residual   # zero at unobserved entries
@@ -404,7 +468,7 @@ class EntityDetector:
         """
         n, phi = self.n_metrics, self.phi
         B, p = coef_lasso.shape
-        scales = column_scales(self.residual_scale, phi)
+        scales = column_scales(self.alert_scale, phi)
         scored = self.scored_columns()
         if phi is None:   # columns are the metrics: their shifts are already computed
             shift = metric_shift
@@ -430,6 +494,11 @@ class EntityDetector:
         expected[:, :k] = self.normaliser.inverse_columns(coords @ self.baseline.U[metric_cols].T, metric_cols)
         return self.tracker.step(active, shift[:, cols], stat, value, expected, ts, columns=cols)
 
+    def leverage(self) -> np.ndarray:
+        """(n,) each metric's leverage ``|U_j|^2``: the share of its own movement the baseline
+        attributes to it alone when it is observed (1: a direction of its own)."""
+        return np.einsum("ij,ij->i", self.baseline.U, self.baseline.U)
+
     def scored_columns(self) -> np.ndarray:
         """(p,) bool: the dictionary columns the decision layer judges.
 
@@ -437,8 +506,7 @@ class EntityDetector:
         no residual to judge it by; its "shifts" are noise amplified by 1/(1 - leverage).  A metric
         is scored once it has ``warmup`` samples, a group when all its members are scored.
         """
-        leverage = np.einsum("ij,ij->i", self.baseline.U, self.baseline.U)
-        scored = (self.normaliser.count >= self.config.warmup) & (leverage <= self.MAX_SCORED_LEVERAGE)
+        scored = (self.normaliser.count >= self.config.warmup) & (self.leverage() <= self.MAX_SCORED_LEVERAGE)
         if self.phi is not None:
             scored = np.concatenate([scored, [bool(scored[g].all()) for g in self.groups]])
         return scored
@@ -455,7 +523,7 @@ class EntityDetector:
         window of ~100 samples the two differ by little.
         """
         columns = np.flatnonzero(self.scored_columns())
-        U, d = self.baseline.U, self.residual_scale
+        U, d = self.baseline.U, self.alert_scale
         phi = np.eye(self.n_metrics) if self.phi is None else self.phi
         Phi = phi[:, columns] * column_scales(d, self.phi)[columns]
         return (Phi - U @ (U.T @ Phi)) / d[:, None], columns
@@ -544,6 +612,8 @@ class EntityDetector:
         self.baseline.set_rows(ready, np.array(loadings) / factor[:, None])
         self.residual_scale = self.residual_scale.copy()   # replaced, not mutated: see BatchUnits
         self.residual_scale[ready] = typical
+        self.tail_factor = self.tail_factor.copy()
+        self.tail_factor[ready] = 1.0
         self.admitted = self.admitted.copy()
         self.admitted[ready] = True
 
@@ -571,8 +641,10 @@ class EntityDetector:
             used = used - selected.sum(axis=0)
         kept = decay ** used
         total = used_weight + kept
-        variance = (kept * self.residual_scale ** 2 + moment / self._truncated_moment) / total
-        self.residual_scale = np.sqrt(np.maximum(variance, 1e-12))
+        truncated = truncated_second_moment(self.lam * self.tail_factor)
+        variance = (kept * self.residual_scale ** 2 + moment / truncated) / total
+        floor = self.normaliser.quantisation_noise()
+        self.residual_scale = np.sqrt(np.maximum(variance, np.maximum(floor * floor, 1e-12)))
 
     def _pad(self, leading: int, result: BatchResult) -> BatchResult:
         if not leading:

@@ -81,6 +81,24 @@ def column_median(A: np.ndarray) -> np.ndarray:
     return np.where(k > 0, 0.5 * (lo + hi), np.nan)
 
 
+def resolution(F: np.ndarray) -> np.ndarray:
+    """Per column of ``F`` (W, n; NaN = missing) the smallest gap between distinct values: the
+    step a quantised or discrete metric moves in (NaN for a column with fewer than two values).
+
+    Gaps below ``1e-9`` of the column's largest magnitude are rounding noise, not steps.
+
+    >>> resolution(np.array([[0.5, 1.0], [0.51, 1.0], [0.5, np.nan], [0.53, 1.0]]))
+    array([0.01,  nan])
+    """
+    S = np.sort(F, axis=0)   # NaN last
+    gaps = np.diff(S, axis=0)
+    with np.errstate(invalid="ignore"):
+        tiny = 1e-9 * np.nanmax(np.abs(S), axis=0, initial=0.0)
+        gaps = np.where(gaps > tiny, gaps, np.inf)
+    step = gaps.min(axis=0, initial=np.inf)
+    return np.where(np.isfinite(step), np.round(step, 12), np.nan)
+
+
 class RobustNormaliser:
     """Per-metric location (exponentially weighted, cleaned updates) and scale.
 
@@ -109,6 +127,11 @@ class RobustNormaliser:
     True
     """
 
+    #: Unit of a metric with a single value throughout its warm-up, relative to that value.
+    CONSTANT_SCALE = 0.01
+    #: The per-metric arrays (what extend and keep carry along).
+    PER_METRIC = ("log_mask", "loc", "scale", "count", "resolution")
+
     def __init__(self, log_mask: np.ndarray, *, halflife: float = 1440.0, min_scale: float = 1e-9,
                  settle: int = 30) -> None:
         self.log_mask = np.asarray(log_mask, dtype=bool).copy()
@@ -122,6 +145,7 @@ class RobustNormaliser:
         self.loc = np.zeros(n)
         self.scale = np.ones(n)
         self.count = np.zeros(n, dtype=np.int64)
+        self.resolution = np.zeros(n)   # step of a quantised metric, own units (0: unknown)
 
     @property
     def n_metrics(self) -> int:
@@ -134,7 +158,14 @@ class RobustNormaliser:
         return np.maximum(scale, np.maximum(self.min_scale, 1e-6 * np.abs(loc)))
 
     def fit(self, X: np.ndarray) -> "RobustNormaliser":
-        """Initialise from a warm-up block (W, n); NaN = missing.  Metrics with no value keep count 0."""
+        """Initialise from a warm-up block (W, n); NaN = missing.  Metrics with no value keep count 0.
+
+        The scale is the MAD (the mean deviation where the MAD is 0), but never below the metric's
+        resolution (:func:`resolution`): a metric that is constant most of the time, two-valued
+        or quantised is measured in steps it can actually take, so a move of a few steps is a
+        few units, not millions.  A metric with a single value in the warm-up has no resolution
+        to read; its unit is ``CONSTANT_SCALE`` of its level (1 where the level is 0).
+        """
         F = self._forward(X)
         seen = np.isfinite(F).any(axis=0)
         F = np.where(seen, F, 0.0)  # all-missing columns: placeholder, count stays 0
@@ -143,7 +174,11 @@ class RobustNormaliser:
             mad = MAD_TO_SIGMA * column_median(np.abs(F - loc))
             # MAD is 0 for metrics that are constant most of the time; fall back to the mean deviation.
             mean_dev = ABS_DEV_TO_SIGMA * np.nanmean(np.abs(F - loc), axis=0)
-        scale = np.where(mad > 0, mad, mean_dev)
+        step = resolution(F)
+        constant = np.isnan(step)
+        step = np.where(constant, np.where(loc != 0, self.CONSTANT_SCALE * np.abs(loc), 1.0), step)
+        scale = np.maximum(np.where(mad > 0, mad, mean_dev), step)
+        self.resolution = np.where(seen, step, 0.0)
         self.loc = np.where(seen, loc, 0.0)
         self.scale = np.where(seen, self._floor(np.nan_to_num(scale), self.loc), 1.0)
         self.count = np.where(seen, np.isfinite(self._forward(X)).sum(axis=0), 0).astype(np.int64)
@@ -211,6 +246,12 @@ class RobustNormaliser:
         self.scale = self._floor(scale, self.loc)
         self.count = seen
 
+    def quantisation_noise(self) -> np.ndarray:
+        """Per metric the standard deviation of rounding to its resolution, in normalised units:
+        ``step / sqrt(12)``, the uniform quantisation error (Widrow & Kollar, *Quantization Noise*,
+        2008).  No residual of a quantised metric is measured more finely than this."""
+        return self.resolution / (np.sqrt(12.0) * self.scale)
+
     def rescale(self, factor: np.ndarray) -> None:
         """Multiply the scales by ``factor`` (the detector expresses metrics in residual sigmas)."""
         self.scale = self._floor(self.scale * factor, self.loc)
@@ -223,10 +264,10 @@ class RobustNormaliser:
 
     def extend(self, other: "RobustNormaliser") -> None:
         """Append the metrics of ``other`` (fitted on their own warm-up) after this one's."""
-        for name in ("log_mask", "loc", "scale", "count"):
+        for name in self.PER_METRIC:
             setattr(self, name, np.concatenate([getattr(self, name), getattr(other, name)]))
 
     def keep(self, index: np.ndarray) -> None:
         """Retain only the metrics at ``index`` (drops vanished metrics)."""
-        for name in ("log_mask", "loc", "scale", "count"):
+        for name in self.PER_METRIC:
             setattr(self, name, getattr(self, name)[index])

@@ -30,9 +30,9 @@ the fingerprint compared at restore).
 
 Arrays, named ``part.field`` (n metrics, g groups, p = n + g decision columns, r baseline
 rank, w warm-up rows held, q metrics on probation, s their regression size, m group members
-in all): ``normaliser.{log_mask (n,) bool, loc (n,), scale (n,), count (n,) int64}``,
-``baseline.{U (n, r), singular_values (r,)}``, ``detector.{residual_scale (n,), admitted (n,)
-bool, warm_start (p,), warmup_rows (w, n), group_members (m,) int64, group_sizes (g,) int64}``,
+in all): ``normaliser.{log_mask (n,) bool, loc (n,), scale (n,), count (n,) int64, resolution (n,)}``,
+``baseline.{U (n, r), singular_values (r,)}``, ``detector.{residual_scale (n,), tail_factor (n,),
+admitted (n,) bool, warm_start (p,), warmup_rows (w, n), group_members (m,) int64, group_sizes (g,) int64}``,
 ``probation.{metric (q,) int64, ww (q, s, s), wz (q, s), zz (q,), count (q,) int64}``,
 ``tracker.{state (p,) int8, history (p,) uint64, below (p,) int64, firing_for (p,) int64,
 peak_shift (p,), peak_value (p,), peak_expected (p,)}``, ``stream.last_seen (n,) int64``;
@@ -70,7 +70,7 @@ from .assemble import EntityStream, MetricRules
 __all__ = ["SNAPSHOT_VERSION", "SettingsChanged", "SnapshotError", "StateDirectory", "restore_entity",
            "snapshot_entity"]
 
-SNAPSHOT_VERSION = 1
+SNAPSHOT_VERSION = 2   # 2: normaliser.resolution and detector.tail_factor
 MAGIC = b"\x89SHSNAP\n"
 _PREFIX = struct.Struct(">8sHIQ")        # magic, version, metadata length, array archive length
 HEADER_SIZE = _PREFIX.size + 32          # + SHA-256
@@ -83,9 +83,11 @@ _ARRAYS: dict[str, tuple[str, tuple[str, ...]]] = {
     "normaliser.loc": ("float64", ("n",)),
     "normaliser.scale": ("float64", ("n",)),
     "normaliser.count": ("int64", ("n",)),
+    "normaliser.resolution": ("float64", ("n",)),
     "baseline.U": ("float64", ("n", "r")),
     "baseline.singular_values": ("float64", ("r",)),
     "detector.residual_scale": ("float64", ("n",)),
+    "detector.tail_factor": ("float64", ("n",)),
     "detector.admitted": ("bool", ("n",)),
     "detector.warm_start": ("float64", ("p",)),
     "detector.warmup_rows": ("float64", ("w", "n")),
@@ -182,9 +184,10 @@ def _arrays(stream: EntityStream) -> dict[str, np.ndarray]:
     groups = [np.asarray(g, dtype=np.int64) for g in det.groups]
     arrays = {
         "normaliser.log_mask": norm.log_mask, "normaliser.loc": norm.loc, "normaliser.scale": norm.scale,
-        "normaliser.count": norm.count,
+        "normaliser.count": norm.count, "normaliser.resolution": norm.resolution,
         "baseline.U": base.U, "baseline.singular_values": base.singular_values,
-        "detector.residual_scale": det.residual_scale, "detector.admitted": det.admitted,
+        "detector.residual_scale": det.residual_scale, "detector.tail_factor": det.tail_factor,
+        "detector.admitted": det.admitted,
         "detector.warm_start": det.warm_start,
         "detector.warmup_rows": np.array(det._warmup_rows, dtype=float).reshape(len(det._warmup_rows), det.n_metrics),
         "detector.group_members": np.concatenate(groups) if groups else np.zeros(0, np.int64),
@@ -348,9 +351,10 @@ def _build(meta: dict, arrays: dict[str, np.ndarray], rules: MetricRules,
 
     det = EntityDetector(n, arrays["normaliser.log_mask"], config, groups)
     det.normaliser.loc, det.normaliser.scale = arrays["normaliser.loc"], arrays["normaliser.scale"]
-    det.normaliser.count = arrays["normaliser.count"]
+    det.normaliser.count, det.normaliser.resolution = arrays["normaliser.count"], arrays["normaliser.resolution"]
     det.baseline.U, det.baseline.singular_values = arrays["baseline.U"], arrays["baseline.singular_values"]
     det.residual_scale, det.admitted = arrays["detector.residual_scale"], arrays["detector.admitted"]
+    det.tail_factor = arrays["detector.tail_factor"]
     det.warm_start = arrays["detector.warm_start"]
     det._warmup_rows = list(rows)
     det._probation = {int(j): [ww, wz, float(zz), int(k)] for j, ww, wz, zz, k in

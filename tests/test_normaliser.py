@@ -68,3 +68,24 @@ def test_column_median_equals_numpy_nanmedian(rows, cols, missing, seed):
         warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN columns
         expected = np.nanmedian(A, axis=0)
     np.testing.assert_array_equal(column_median(A), expected)
+
+
+def test_quantised_and_two_valued_metrics_are_measured_in_their_own_steps():
+    """A metric that sits at one value and now and then moves one step (MAD 0) gets the step
+    as its unit, not a mean deviation of a few millionths: a jump of 9 steps is 9 units.
+    (Data of this shape: ASD, Li et al. KDD 2021, metric m02 of most servers.)"""
+    X = np.full((540, 2), 0.5)
+    X[::200, 0] = 0.51                       # two-valued, rarely moves
+    X[:, 1] = np.round(np.linspace(0, 1, 540), 2)   # quantised to 0.01
+    norm = RobustNormaliser(np.zeros(2, bool)).fit(X)
+    assert norm.resolution.tolist() == pytest.approx([0.01, 0.01])
+    assert norm.scale[0] == pytest.approx(0.01)
+    assert norm.transform(np.array([[0.59, 0.5]]))[0, 0] == pytest.approx(9.0)
+    # Quantisation noise of a uniform rounding error: step / sqrt(12) (Widrow & Kollar 2008).
+    assert norm.quantisation_noise()[0] == pytest.approx(1 / np.sqrt(12))
+
+
+def test_a_metric_constant_in_warm_up_has_a_unit_of_one_percent_of_its_level():
+    X = np.column_stack([np.full(100, 250.0), np.zeros(100)])
+    norm = RobustNormaliser(np.zeros(2, bool)).fit(X)
+    assert norm.scale.tolist() == pytest.approx([2.5, 1.0])

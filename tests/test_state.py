@@ -166,10 +166,10 @@ def test_every_attribute_is_saved_or_derived():
     saved_or_derived = {
         "stream": {"entity", "rules", "names", "index", "detector", "group_labels", "_positions", "_last_seen",
                    "ignored_metrics", "last_ts", "last_residual_norm", "labels"},
-        "detector": {"config", "lam", "_scale_decay", "_truncated_moment", "normaliser", "baseline", "tracker",
-                     "residual_scale", "warm_start", "groups", "phi", "_lipschitz", "_warmup_rows", "_probation",
+        "detector": {"config", "lam", "_scale_decay", "normaliser", "baseline", "tracker",
+                     "residual_scale", "tail_factor", "warm_start", "groups", "phi", "_lipschitz", "_warmup_rows", "_probation",
                      "admitted", "samples"},
-        "normaliser": {"log_mask", "halflife", "decay", "min_scale", "settle", "loc", "scale", "count"},
+        "normaliser": {"log_mask", "halflife", "decay", "min_scale", "settle", "loc", "scale", "count", "resolution"},
         "baseline": {"fixed_rank", "energy", "max_rank", "decay", "U", "singular_values"},
         "tracker": {"config", "_window_mask", "state", "history", "below", "firing_for", "peak_shift",
                     "peak_value", "peak_expected", "incident"},
@@ -270,13 +270,13 @@ def test_truncation_is_refused(snapshot, length):
 def test_specific_faults_have_specific_messages(snapshot):
     meta, arrays = split(snapshot)
     archive = npz(arrays)
-    assert "version 2" in refused(reframe(meta, archive, version=2), "unsupported snapshot version")
+    assert "version 1" in refused(reframe(meta, archive, version=1), "unsupported snapshot version")   # the format before 2
     refused(snapshot[:22] + bytes(32) + snapshot[HEADER_SIZE:], "checksum")
     refused(snapshot + b"\0", "trailing")
     refused(b"", "empty")
     refused(os.urandom(4096), "magic")
     refused("not bytes", "bytes")
-    refused(reframe(dict(meta, version=2), archive), "metadata version")
+    refused(reframe(dict(meta, version=SNAPSHOT_VERSION + 1), archive), "metadata version")
     refused(reframe(meta, npz(arrays, compressed=True)), "compressed")
     refused(reframe(dict(meta, names=meta["names"][:-1]), archive), "shape")
     refused(reframe(dict(meta, names=[meta["names"][0]] * len(meta["names"])), archive), "duplicates")

@@ -93,7 +93,7 @@ def test_window_system_equals_a_numpy_recomputation_from_the_detector_units():
     A, columns = det.window_dictionary()
     assert columns.tolist() == np.flatnonzero(det.scored_columns()).tolist()
     Qn, _ = np.linalg.qr(det.baseline.U)
-    d = det.residual_scale
+    d = det.alert_scale
     reference = ((np.eye(N) - Qn @ Qn.T) * d / d[:, None])[:, columns]
     np.testing.assert_allclose(A, reference, atol=1e-12)
 
