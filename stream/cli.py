@@ -5,7 +5,7 @@
                       [--report DIR [--labels LABELS] [--budget ALERTS_PER_DAY [--quiet-until TS]]]
     shiftsieve run [--config FILE] [--source URL] [--events FILE] [--listen HOST:PORT]
     shiftsieve evaluate INPUT LABELS [--config FILE] [--methods a,b,...] [--json]
-    shiftsieve evaluate --events EVENTS LABELS [--vectors N] [--json]
+    shiftsieve evaluate --events EVENTS [INPUT] LABELS [--config FILE] [--vectors N] [--json]
     shiftsieve tune INPUT --budget ALERTS_PER_DAY [--quiet-until TS] [--labels LABELS] [--config FILE] [--write FILE]
     shiftsieve produce --brokers HOST:PORT[,HOST:PORT] --topic TOPIC [--encoding vector|sample|otlp_json]
                        [--scenario NAME | --input FILE] [--speedup X] [--loop] [--config FILE]
@@ -72,13 +72,14 @@ def _parser() -> argparse.ArgumentParser:
     ev = sub.add_parser("evaluate", help="compare shiftsieve with baseline detectors on a labelled input "
                                          "(or score an events file with --events)")
     ev.add_argument("paths", nargs="+", metavar="INPUT LABELS",
-                    help="replay input and its labels file; with --events, only LABELS")
+                    help="replay input and its labels file; with --events, LABELS or INPUT LABELS (the input "
+                         "adds false alerts per entity-day and point-adjusted F1)")
     ev.add_argument("--events", metavar="EVENTS", help="score this alert-events file instead of running methods")
     ev.add_argument("--config", metavar="FILE", help="TOML configuration")
     ev.add_argument("--methods", metavar="a,b,...", help="methods to compare (default: all): "
-                    "shiftsieve, ewma_zscore, halfspacetrees, pcp")
+                    "shiftsieve, ewma_zscore, ewma_zscore_calibrated, halfspacetrees, pcp, pcp_calibrated")
     ev.add_argument("--vectors", type=int, help="with --events: vectors in the replayed input "
-                                                "(default: from the labels file)")
+                                                "(default: counted in INPUT, else from the labels file)")
     ev.add_argument("--json", action="store_true", help="print the figures as JSON")
 
     tune = sub.add_parser("tune", help="find the most sensitive false_alarm and k-of-m confirmation that keep "
@@ -115,11 +116,17 @@ def _parser() -> argparse.ArgumentParser:
 
 
 def _evaluate(args: argparse.Namespace) -> int:
-    from .compare import compare_methods, format_comparison, parse_methods
+    from .compare import compare_methods, format_comparison, input_timestamps, parse_methods
     if args.events is not None:
-        if len(args.paths) != 1 or args.methods or args.config:
-            raise EvaluationError("evaluate --events takes EVENTS LABELS (no INPUT, --methods or --config)")
-        result = evaluate(load_events(args.events), load_labels(args.paths[0]), vectors=args.vectors)
+        if len(args.paths) not in (1, 2) or args.methods or (args.config and len(args.paths) == 1):
+            raise EvaluationError("evaluate --events takes EVENTS [INPUT] LABELS (no --methods; --config only "
+                                  "with INPUT)")
+        events, labels = load_events(args.events), load_labels(args.paths[-1])
+        timestamps = input_timestamps(args.paths[0], load_config(args.config)) if len(args.paths) == 2 else None
+        vectors = args.vectors
+        if vectors is None and timestamps is not None:
+            vectors = sum(ts.size for ts in timestamps.values())
+        result = evaluate(events, labels, vectors=vectors, timestamps=timestamps)
         print(orjson.dumps(result.to_dict(), option=orjson.OPT_INDENT_2).decode() if args.json
               else format_table(result))
         return 0

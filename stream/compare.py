@@ -5,16 +5,22 @@ runs each method on it, scores its alert events with :func:`.evaluate.evaluate`
 and prints one table.  The methods (:mod:`shiftsieve.models.baselines`):
 
 - ``shiftsieve``: the engine, exactly as ``shiftsieve replay`` runs it;
-- ``ewma_zscore``: per-metric exponentially weighted z-score;
+- ``ewma_zscore``: per-metric exponentially weighted z-score, Gaussian threshold;
+- ``ewma_zscore_calibrated``: the same, each metric's threshold set on its own history;
 - ``halfspacetrees``: river's ``HalfSpaceTrees`` on whole vectors (incident level
-  only: its events name no metric, localisation is n/a);
-- ``pcp``: batch Principal Component Pursuit of each entity's whole matrix (offline).
+  only: its events name no metric, localisation and HitRate are n/a);
+- ``pcp``: batch Principal Component Pursuit of each entity's whole matrix (offline),
+  one threshold pooled over the warm-up;
+- ``pcp_calibrated``: the same decomposition, each metric's threshold set on its own history.
 
-All four use the configured warm-up, ``model.false_alarm``, ``model.log_metrics``
-and decision layer (``[decision]``): the baselines' flags go through the same
+All use the configured warm-up, ``model.false_alarm``, ``model.log_metrics`` and
+decision layer (``[decision]``): the baselines' flags go through the same
 :class:`~shiftsieve.models.decision.AlertTracker` and become alert events with
-:mod:`.events`, so they are scored exactly like shiftsieve's.  ``vectors/s`` is
-the wall clock of the method alone (model, decision, events), not of loading.
+:mod:`.events`, so they are scored exactly like shiftsieve's.  An entity's
+*history*, for the calibrated methods, is its vectors before the labels'
+``scored_from`` (what a practitioner has before going live), or its warm-up when
+that is longer or there is none.  ``seconds`` and ``vectors/s`` are the wall clock
+of the method alone (model, decision, events), not of loading.
 """
 
 from __future__ import annotations
@@ -22,11 +28,18 @@ from __future__ import annotations
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Sequence
+from typing import Callable, Sequence
 
 import numpy as np
 
-from shiftsieve.models.baselines import EWMAZScore, Flags, HalfSpaceTreesDetector, pcp_detect
+from shiftsieve.models.baselines import (
+    EWMAZScore,
+    Flags,
+    HalfSpaceTreesDetector,
+    ewma_zscore_calibrated,
+    pcp_calibrated,
+    pcp_detect,
+)
 from shiftsieve.models.decision import AlertTracker
 from shiftsieve.models.normaliser import log_scaled, symexp
 
@@ -39,8 +52,9 @@ from .events import events_from_transitions
 from .readers import InputError, Rejected
 from .replay import open_input
 
-METHODS = ("shiftsieve", "ewma_zscore", "halfspacetrees", "pcp")
-LOCALISES = {"shiftsieve": True, "ewma_zscore": True, "halfspacetrees": False, "pcp": True}
+METHODS = ("shiftsieve", "ewma_zscore", "ewma_zscore_calibrated", "halfspacetrees", "pcp", "pcp_calibrated")
+LOCALISES = {"shiftsieve": True, "ewma_zscore": True, "ewma_zscore_calibrated": True, "halfspacetrees": False,
+             "pcp": True, "pcp_calibrated": True}
 
 #: Half-life of the EWMA z-score, in samples (30 min at the demo's 30 s step): short enough to
 #: follow the demo's daily traffic swing, as a per-metric threshold must to be usable at all
@@ -48,19 +62,23 @@ LOCALISES = {"shiftsieve": True, "ewma_zscore": True, "halfspacetrees": False, "
 EWMA_HALFLIFE = 60.0
 #: Seed of the HalfSpaceTrees' random splits (replays must be reproducible).
 HST_SEED = 42
+#: The EWMA walks many entities' metrics side by side (one Python step per row for all of them);
+#: entities are stacked in groups of at most this many matrix cells (~32 MB per float array).
+STACK_CELLS = 1 << 22
 
 
 @dataclass(frozen=True)
 class MethodScore:
-    """One row of the comparison: a method, its incident-level scores and its speed."""
+    """One row of the comparison: a method, its scores and its speed."""
 
-    method: str            # "shiftsieve", "ewma_zscore", "halfspacetrees", "pcp"
+    method: str            # one of METHODS
     localises: bool
     evaluation: Evaluation
     vectors_per_second: float
+    seconds: float = 0.0   # wall clock of the method alone
 
     def to_dict(self) -> dict:
-        return {"method": self.method, "localises": self.localises,
+        return {"method": self.method, "localises": self.localises, "seconds": self.seconds,
                 "vectors_per_second": self.vectors_per_second, **self.evaluation.to_dict()}
 
 
@@ -70,6 +88,8 @@ class _Entity:
     X: np.ndarray          # (T, n) raw values, NaN = missing
     ts: np.ndarray
     log_mask: np.ndarray
+    warmup: int            # rows before the first scored one: min(model.warmup, T)
+    history: int           # rows the calibrated methods calibrate on (module docstring)
 
 
 @dataclass(frozen=True)
@@ -107,18 +127,34 @@ def _load(path: str | Path, config: Config) -> list[Vector]:
     return vectors
 
 
-def _entities(vectors: list[Vector], engine: Engine) -> list[_Entity]:
-    """Per entity, the dense matrix of its in-order vectors (later-or-equal ts are refused, as the engine does)."""
+def _in_order(vectors: list[Vector]) -> dict[str, list[Vector]]:
+    """Per entity, its vectors with increasing ts (later-or-equal ts are refused, as the engine does)."""
     by_entity: dict[str, list[Vector]] = {}
     for v in vectors:
         own = by_entity.setdefault(v.entity, [])
         if not own or v.ts > own[-1].ts:
             own.append(v)
+    return by_entity
+
+
+def _timestamps(by_entity: dict[str, list[Vector]]) -> dict[str, np.ndarray]:
+    return {entity: np.array([v.ts for v in own]) for entity, own in by_entity.items()}
+
+
+def input_timestamps(path: str | Path, config: Config) -> dict[str, np.ndarray]:
+    """Per entity, the increasing timestamps of the input's vectors (for scoring an events file)."""
+    return _timestamps(_in_order(_load(path, config)))
+
+
+def _entities(by_entity: dict[str, list[Vector]], engine: Engine, config: Config, labels: Labels) -> list[_Entity]:
+    """Per entity, the dense matrix of its vectors, its warm-up and its history (module docstring)."""
     out = []
     for entity, own in by_entity.items():
         stream = EntityStream(entity, engine.rules, engine.detector_config)
         X, ts = stream.assemble(own)
-        out.append(_Entity(stream, X, ts, engine.rules.log_scale(stream.names)))
+        warmup = min(config.model.warmup, X.shape[0])
+        before = int(np.count_nonzero(ts < labels.scored_after(entity)))
+        out.append(_Entity(stream, X, ts, engine.rules.log_scale(stream.names), warmup, max(warmup, before)))
     return out
 
 
@@ -126,13 +162,17 @@ def _model_scale(e: _Entity) -> np.ndarray:
     return log_scaled(e.X, e.log_mask)
 
 
-def _events(e: _Entity, flags: Flags, start: int, config: Config, whole_vector: bool = False) -> list[dict]:
-    """The decision layer and the event format for ``flags`` of rows ``start:`` (after warm-up)."""
-    ts = e.ts[start:]
+def _after_warmup(e: _Entity, flags: Flags) -> Flags:
+    return Flags(flags.active[e.warmup:], flags.stat[e.warmup:], flags.expected[e.warmup:])
+
+
+def _events(e: _Entity, flags: Flags, config: Config, whole_vector: bool = False) -> list[dict]:
+    """The decision layer and the event format for ``flags`` of the rows after the warm-up."""
+    ts = e.ts[e.warmup:]
     if whole_vector:
         value = expected = np.full(flags.stat.shape, np.nan)
     else:
-        value = e.X[start:]
+        value = e.X[e.warmup:]
         expected = np.array(flags.expected)
         expected[:, e.log_mask] = symexp(expected[:, e.log_mask])
     tracker = AlertTracker(flags.active.shape[1], config.detector_config().decision)
@@ -145,37 +185,83 @@ def _events(e: _Entity, flags: Flags, start: int, config: Config, whole_vector: 
     return events
 
 
-def _after_warmup(flags: Flags, start: int) -> Flags:
-    return Flags(flags.active[start:], flags.stat[start:], flags.expected[start:])
+def _stacks(entities: list[_Entity]) -> list[list[_Entity]]:
+    """Entities in groups whose stacked matrix (longest T x all their metrics) stays within STACK_CELLS."""
+    groups: list[list[_Entity]] = []
+    rows = cols = 0
+    for e in sorted(entities, key=lambda e: e.X.shape[0]):
+        T, n = e.X.shape
+        if groups and max(rows, T) * (cols + n) <= STACK_CELLS:
+            groups[-1].append(e)
+            rows, cols = max(rows, T), cols + n
+        else:
+            groups.append([e])
+            rows, cols = T, n
+    return groups
 
 
-def _ewma(e: _Entity, config: Config) -> list[dict]:
-    m = config.model
-    W = min(m.warmup, e.X.shape[0])
-    flags = EWMAZScore(e.X.shape[1], halflife=EWMA_HALFLIFE, false_alarm=m.false_alarm,
-                       warmup=m.warmup).process(_model_scale(e))
-    return _events(e, _after_warmup(flags, W), W, config)
+def _stacked(entities: list[_Entity], detect: Callable[[np.ndarray, np.ndarray], Flags]) -> list[Flags]:
+    """Run a detector of independent columns once on the entities side by side (rows padded with
+    NaN, i.e. missing) and split its flags back; ``detect(F, history per column)``."""
+    widths = [e.X.shape[1] for e in entities]
+    edges = np.cumsum([0, *widths])
+    F = np.full((max(e.X.shape[0] for e in entities), edges[-1]), np.nan)
+    for e, lo, hi in zip(entities, edges[:-1], edges[1:]):
+        F[: e.X.shape[0], lo:hi] = _model_scale(e)
+    flags = detect(F, np.repeat([e.history for e in entities], widths))
+    return [Flags(*(a[: e.X.shape[0], lo:hi] for a in (flags.active, flags.stat, flags.expected)))
+            for e, lo, hi in zip(entities, edges[:-1], edges[1:])]
 
 
-def _hst(e: _Entity, config: Config) -> list[dict]:
-    m = config.model
-    W = min(m.warmup, e.X.shape[0])
-    if W < 2:
-        return []
+def _ewma_runner(calibrated: bool) -> Callable[[list[_Entity], Config], list[dict]]:
+    def run(entities: list[_Entity], config: Config) -> list[dict]:
+        m = config.model
+
+        def detect(F: np.ndarray, history: np.ndarray) -> Flags:
+            if calibrated:
+                return ewma_zscore_calibrated(F, history=history, halflife=EWMA_HALFLIFE,
+                                              false_alarm=m.false_alarm, warmup=m.warmup)
+            return EWMAZScore(F.shape[1], halflife=EWMA_HALFLIFE, false_alarm=m.false_alarm,
+                              warmup=m.warmup).process(F)
+
+        return [event for group in _stacks(entities)
+                for e, flags in zip(group, _stacked(group, detect))
+                for event in _events(e, _after_warmup(e, flags), config)]
+    return run
+
+
+def _each_entity(detect: Callable[[_Entity, Config], Flags], whole_vector: bool = False
+                 ) -> Callable[[list[_Entity], Config], list[dict]]:
+    """A per-entity detector (flags for the rows after the warm-up) over all entities; those with
+    fewer than 2 warm-up rows are skipped."""
+    def run(entities: list[_Entity], config: Config) -> list[dict]:
+        return [event for e in entities if e.warmup >= 2
+                for event in _events(e, detect(e, config), config, whole_vector)]
+    return run
+
+
+def _hst(e: _Entity, config: Config) -> Flags:
     F = _model_scale(e)
-    detector = HalfSpaceTreesDetector(F.shape[1], false_alarm=m.false_alarm, seed=HST_SEED).fit(F[:W])
-    return _events(e, detector.process(F[W:]), W, config, whole_vector=True)
+    detector = HalfSpaceTreesDetector(F.shape[1], false_alarm=config.model.false_alarm, seed=HST_SEED)
+    return detector.fit(F[: e.warmup]).process(F[e.warmup:])
 
 
-def _pcp(e: _Entity, config: Config) -> list[dict]:
-    W = min(config.model.warmup, e.X.shape[0])
-    if W < 2:
-        return []
-    found = pcp_detect(_model_scale(e), warmup=W, false_alarm=config.model.false_alarm)
-    return _events(e, _after_warmup(found.flags, W), W, config)
+def _pcp(e: _Entity, config: Config) -> Flags:
+    return _after_warmup(e, pcp_detect(_model_scale(e), warmup=e.warmup, false_alarm=config.model.false_alarm).flags)
 
 
-_BASELINES = {"ewma_zscore": _ewma, "halfspacetrees": _hst, "pcp": _pcp}
+def _pcp_calibrated(e: _Entity, config: Config) -> Flags:
+    return _after_warmup(e, pcp_calibrated(_model_scale(e), warmup=e.warmup, history=e.history,
+                                           false_alarm=config.model.false_alarm))
+
+
+_BASELINES: dict[str, Callable[[list[_Entity], Config], list[dict]]] = {
+    "ewma_zscore": _ewma_runner(calibrated=False),
+    "ewma_zscore_calibrated": _ewma_runner(calibrated=True),
+    "halfspacetrees": _each_entity(_hst, whole_vector=True),
+    "pcp": _each_entity(_pcp),
+    "pcp_calibrated": _each_entity(_pcp_calibrated),
+}
 
 
 def _shiftsieve(vectors: list[Vector], config: Config) -> list[dict]:
@@ -192,35 +278,60 @@ def compare_methods(path: str | Path, config: Config, labels: Labels, *,
     """Run each method on the input at ``path``, score it against ``labels``; rows in ``methods`` order."""
     chosen = check_methods(list(METHODS if methods is None else methods))
     vectors = _load(path, config)
-    entities = _entities(vectors, Engine.from_config(config)) if set(chosen) - {"shiftsieve"} else []
-    count = sum(e.X.shape[0] for e in entities) if entities else len(vectors)
+    by_entity = _in_order(vectors)
+    timestamps = _timestamps(by_entity)
+    count = sum(ts.size for ts in timestamps.values())
+    entities = _entities(by_entity, Engine.from_config(config), config, labels) \
+        if set(chosen) - {"shiftsieve"} else []
     rows = []
     for name in chosen:
         started = time.perf_counter()
-        if name == "shiftsieve":
-            events = _shiftsieve(vectors, config)
-        else:
-            events = [ev for e in entities for ev in _BASELINES[name](e, config)]
+        events = _shiftsieve(vectors, config) if name == "shiftsieve" else _BASELINES[name](entities, config)
         seconds = time.perf_counter() - started
-        rows.append(MethodScore(name, LOCALISES[name], evaluate(events, labels, vectors=count),
-                                count / seconds if seconds > 0 else float("inf")))
+        rows.append(MethodScore(name, LOCALISES[name], evaluate(events, labels, vectors=count, timestamps=timestamps),
+                                count / seconds if seconds > 0 else float("inf"), seconds))
     return rows
 
 
+def _cell(value: float | None, digits: int = 2) -> str:
+    return "n/a" if value is None else f"{value:.{digits}f}"
+
+
+def _hit_cell(e: Evaluation, ranking: str, localises: bool) -> str:
+    h = e.hit_rate.get(ranking)
+    return "n/a" if h is None or not localises else f"{h.at_100:.2f}/{h.at_150:.2f}"
+
+
 def format_comparison(rows: Sequence[MethodScore]) -> str:
-    """The one table: F1, precision, recall, localisation, mean delay, false alerts per 10k, vectors/s."""
-    head = ("method", "F1", "precision", "recall", "localisation", "delay mean s", "false/10k", "vectors/s")
+    """The one table (F1, precision, recall, false alerts per entity-day, fragments, median delay,
+    HitRate on each ranking, point-adjusted F1, time) and a legend.  Localisation is not a column:
+    it is HitRate@100% of the metrics ranking (the JSON keeps it)."""
+    head = ("method", "F1", "prec", "recall", "false/day", "frag", "delay s (steps)",
+            "HR metrics", "HR msbl", "HR gLASSO", "PA-F1*", "seconds", "vectors/s")
     body = []
     for r in rows:
         e = r.evaluation
-        loc = "n/a" if not r.localises or e.localisation is None else f"{e.localisation:.2f}"
-        delay = "n/a" if e.delay_mean_seconds is None else f"{e.delay_mean_seconds:.0f}"
-        body.append((r.method, f"{e.f1:.2f}", f"{e.precision:.2f}", f"{e.recall:.2f}", loc, delay,
-                     f"{e.false_alerts_per_10k:.1f}", f"{r.vectors_per_second:,.0f}"))
+        delay = "n/a" if e.delay_median_seconds is None else f"{e.delay_median_seconds:.0f}" + (
+            "" if e.delay_median_steps is None else f" ({e.delay_median_steps:.1f})")
+        body.append((r.method, f"{e.f1:.2f}", f"{e.precision:.2f}", f"{e.recall:.2f}",
+                     _cell(e.false_alerts_per_entity_day), str(len(e.fragments)), delay,
+                     _hit_cell(e, "metrics", r.localises), _hit_cell(e, "msbl", r.localises),
+                     _hit_cell(e, "group_lasso", r.localises),
+                     _cell(None if e.point_adjusted is None else e.point_adjusted.f1),
+                     f"{r.seconds:.1f}", f"{r.vectors_per_second:,.0f}"))
+    if not rows:
+        return "no methods"
     widths = [max(len(row[i]) for row in (head, *body)) for i in range(len(head))]
-    scenario = rows[0].evaluation.scenario if rows else ""
-    lines = [f"scenario {scenario}: {rows[0].evaluation.labelled} labelled incidents, "
-             f"{rows[0].evaluation.vectors} vectors" if rows else "no methods"]
+    e = rows[0].evaluation
+    days = "" if e.scored_entity_days is None else f", {e.scored_entity_days:.1f} scored entity-days"
+    lines = [f"scenario {e.scenario}: {e.labelled} labelled incidents, {e.vectors} vectors{days}, "
+             f"onsets up to {e.tolerance_seconds:g} s early count"]
     for row in (head, *body):
-        lines.append("  ".join(cell.ljust(w) if i == 0 else cell.rjust(w) for i, (cell, w) in enumerate(zip(row, widths))))
+        lines.append("  ".join(cell.ljust(w) if i == 0 else cell.rjust(w)
+                               for i, (cell, w) in enumerate(zip(row, widths))))
+    lines += ["false/day: false alerts per scored entity-day; frag: further onsets inside an already detected",
+              "  label (not false alerts); delay: median onset - start; HR: HitRate@100%/@150% (Su et al. 2019) on",
+              "  the incident's metrics by peak |shift| and on its joint-window rankings (M-SBL, group LASSO);",
+              "  PA-F1*: point-adjusted F1 (Xu et al. 2018), the published papers' convention -- it inflates",
+              "  scores; compare it only with published figures."]
     return "\n".join(lines)

@@ -3,11 +3,18 @@
 
 import numpy as np
 import pytest
-from scipy.stats import binom
+from scipy.stats import binom, norm
 
-from shiftsieve.models.baselines import EWMAZScore, HalfSpaceTreesDetector, pcp_detect
+from shiftsieve.models.baselines import (
+    EWMAZScore,
+    HalfSpaceTreesDetector,
+    calibrated_flags,
+    ewma_zscore_calibrated,
+    history_thresholds,
+    pcp_calibrated,
+    pcp_detect,
+)
 from shiftsieve.models.detector import threshold_for
-
 
 
 def _reference_ewma(x, alpha):
@@ -145,3 +152,96 @@ def test_pcp_flag_rate_after_warm_up_is_near_false_alarm_on_low_rank_plus_noise(
 def test_ewma_rejects_bad_settings(bad):
     with pytest.raises(ValueError):
         EWMAZScore(3, **bad)
+
+
+# --- calibrated thresholds: each metric's own 1 - false_alarm quantile of its history ----------------------
+
+def test_history_thresholds_are_numpy_quantiles_of_the_absolute_scores():
+    rng = np.random.default_rng(11)
+    scores = rng.standard_t(3, size=(400, 4))
+    scores[rng.random((400, 4)) < 0.2] = np.nan     # missing cells are not scores
+    scores[:, 2] = np.nan                            # no score at all: the Gaussian threshold
+    scores[:, 3] = np.where(np.isnan(scores[:, 3]), np.nan, 0.0)   # all exactly zero: likewise
+    false_alarm = 0.01
+    got = history_thresholds(scores, false_alarm)
+    for j in (0, 1):
+        column = np.abs(scores[:, j][np.isfinite(scores[:, j])])
+        assert got[j] == pytest.approx(np.quantile(column, 1 - false_alarm), rel=1e-12)   # numpy.quantile
+    assert got[2] == got[3] == pytest.approx(norm.isf(false_alarm / 2))                   # scipy.stats.norm
+
+
+def test_calibrated_flags_map_each_threshold_to_the_gaussian_one():
+    stat = np.array([[1.0, 4.0], [-3.0, 9.0], [2.5, -8.5]])
+    thresholds = np.array([2.0, 8.0])
+    flags = calibrated_flags(stat, thresholds, 1e-3, np.zeros_like(stat))
+    assert flags.active.tolist() == [[False, False], [True, True], [True, True]]
+    lam = norm.isf(1e-3 / 2)                                         # scipy.stats.norm, two-sided
+    np.testing.assert_allclose(flags.stat, stat * lam / thresholds)
+    assert np.array_equal(np.abs(flags.stat) > lam, flags.active)    # the same decision in both units
+
+
+def test_ewma_with_an_infinite_threshold_is_the_plain_ewma_zscore():
+    # What the calibration scores: z_t = (x_t - m_{t-1}) / sqrt(v_{t-1}) of the textbook recursion
+    # (Finch 2009, written out per sample above), nothing flagged or cleaned.
+    rng = np.random.default_rng(12)
+    X = rng.standard_t(3, size=(300, 2)) + 10.0
+    X[200:, 0] += 30.0                                   # a step that a finite threshold would clean
+    halflife, warmup = 20.0, 50
+    flags = EWMAZScore(2, halflife=halflife, warmup=warmup, thresholds=np.inf).process(X)
+    alpha = 1.0 - 0.5 ** (1.0 / halflife)
+    for j in range(2):
+        mean, var = _reference_ewma(X[:, j], alpha)
+        z = (X[warmup:, j] - mean[warmup - 1:-1]) / np.sqrt(var[warmup - 1:-1])
+        np.testing.assert_allclose(flags.stat[warmup:, j], z, rtol=1e-9)
+    assert not flags.active.any() and np.all(flags.stat[:warmup] == 0.0)
+
+
+def test_ewma_calibrated_meets_the_false_alarm_target_on_heavy_tails():
+    # t(3) noise: the Gaussian threshold flags ~24x the target. The calibrated thresholds, set on the
+    # first half, flag the second half at the target: 99 % bound from the binomial variance of the
+    # count (scipy.stats.binom) plus that of each metric's threshold as an empirical quantile of
+    # N history scores (exceedance-rate variance p(1-p)/N, a standard fact about quantiles).
+    rng = np.random.default_rng(0)
+    T, n, history, warmup, false_alarm = 20_000, 10, 10_000, 500, 1e-3
+    F = rng.standard_t(3, size=(T, n))
+    plain = EWMAZScore(n, halflife=200.0, false_alarm=false_alarm, warmup=warmup).process(F).active[history:]
+    tuned = ewma_zscore_calibrated(F, history=history, halflife=200.0, false_alarm=false_alarm, warmup=warmup)
+    after = tuned.active[history:]
+    M, N = after.size, history - warmup
+    sd = np.sqrt(binom.var(M, false_alarm) + n * (M / n) ** 2 * false_alarm * (1 - false_alarm) / N)
+    assert abs(after.sum() - M * false_alarm) <= 2.58 * sd, after.sum()
+    assert plain.sum() > 10 * M * false_alarm
+
+
+def test_stacked_entities_give_each_entity_its_own_ewma():
+    # The metrics are independent, so stacking entities side by side, the shorter padded with NaN
+    # (missing: neither scored nor learned), must give exactly the per-entity results.
+    rng = np.random.default_rng(13)
+    A, B = rng.standard_t(3, size=(700, 3)), rng.standard_t(3, size=(500, 2))
+    stacked = np.full((700, 5), np.nan)
+    stacked[:, :3], stacked[:500, 3:] = A, B
+    both = ewma_zscore_calibrated(stacked, history=np.array([600, 600, 600, 300, 300]), halflife=50.0,
+                                  false_alarm=0.01, warmup=100)
+    alone = [ewma_zscore_calibrated(A, history=600, halflife=50.0, false_alarm=0.01, warmup=100),
+             ewma_zscore_calibrated(B, history=300, halflife=50.0, false_alarm=0.01, warmup=100)]
+    for got, want in zip((both.stat[:, :3], both.stat[:500, 3:]), (alone[0].stat, alone[1].stat)):
+        np.testing.assert_array_equal(got, want)
+
+
+def test_pcp_calibrated_thresholds_are_each_metrics_history_quantile():
+    # Half the metrics have t(2.5) noise, half Gaussian: PCP's pooled threshold is one number for
+    # both. The calibrated one is, per metric, numpy.quantile of |S| over its own history rows, and
+    # the reported stat is S scaled so that threshold maps to the Gaussian one (scipy.stats.norm).
+    rng = np.random.default_rng(14)
+    T, n, warmup, history, false_alarm = 1500, 20, 500, 1000, 0.01
+    noise = np.c_[rng.standard_t(2.5, size=(T, 10)), 0.3 * rng.standard_normal((T, 10))]
+    F = rng.standard_normal((T, 3)) @ rng.standard_normal((3, n)) * 5.0 + noise
+    F[50:60, 4] = np.nan                                              # missing: not a history score
+    raw = pcp_detect(F, warmup=warmup, false_alarm=false_alarm).flags.stat
+    tuned = pcp_calibrated(F, warmup=warmup, history=history, false_alarm=false_alarm)
+    lam = norm.isf(false_alarm / 2)
+    for j in range(n):
+        seen = np.isfinite(F[:history, j])
+        tau = np.quantile(np.abs(raw[:history, j][seen]), 1 - false_alarm)
+        np.testing.assert_array_equal(tuned.active[:, j], np.abs(raw[:, j]) > tau)
+        np.testing.assert_allclose(tuned.stat[:, j], raw[:, j] * lam / tau, rtol=1e-12)

@@ -36,17 +36,24 @@ def test_every_method_runs_and_shiftsieve_finds_the_labelled_fault(single_shift)
     assert hst and all(p.metrics == () for p in hst)   # whole-vector events name no metric
 
 
-def test_table_has_one_row_per_method_and_no_localisation_for_hst(single_shift):
+def test_table_has_one_row_per_method_and_no_hit_rate_for_hst(single_shift):
     table = format_comparison(single_shift).splitlines()
-    assert "F1" in table[1] and "vectors/s" in table[1]
-    hst = next(line for line in table if line.startswith("halfspacetrees"))
-    assert hst.split()[4] == "n/a"
-    assert len(table) == 2 + len(METHODS)
+    head = table[1].split("  ")
+    for column in ("F1", "prec", "recall", "false/day", "frag", "HR metrics", "HR msbl", "PA-F1*",
+                   "seconds", "vectors/s"):
+        assert column in [cell.strip() for cell in head if cell.strip()]
+    hst = dict(zip([c.strip() for c in head if c.strip()],
+                   [c.strip() for c in next(line for line in table if line.startswith("halfspacetrees"))
+                    .split("  ") if c.strip()]))
+    assert hst["HR metrics"] == "n/a"
+    assert all(len(line) <= 140 for line in table)
+    assert sum(line.split(" ")[0] in METHODS for line in table) == len(METHODS)
+    assert "point-adjusted F1 (Xu et al. 2018)" in " ".join(table) and "inflates" in " ".join(table)
 
 
 def test_surge_per_metric_zscore_alerts_more_than_shiftsieve():
-    # DESIGN.md section 1: per-metric thresholds "fire on every traffic surge"; the surge file's
-    # labels say there is no fault, so every alert is false.
+    # Per-metric thresholds fire on traffic surges (README); the surge file's labels say there is no
+    # fault, so every alert is false.
     data, labels = _files("surge")
     rows = compare_methods(data, load_config(None), load_labels(labels), methods=["shiftsieve", "ewma_zscore"])
     shiftsieve, ewma = (r.evaluation for r in rows)
@@ -69,6 +76,26 @@ def test_cli_compares_methods_as_json(capsys):
     assert rows[0]["f1"] == 1.0 and rows[1]["localises"] is False
 
 
+def test_cli_scores_an_events_file_with_its_input(tmp_path, capsys):
+    # With INPUT, the events are scored over the input's time: 4 entities of the bundled file, each
+    # scored after scored_from; the labels file is the generator's, plus a scored_from for one entity.
+    data, labels = _files("single_shift")
+    events = tmp_path / "events.jsonl"
+    assert main(["replay", str(data), "--events", str(events), "--quiet"]) == 0
+    scored = tmp_path / "scored.labels.json"
+    spec = json.loads(labels.read_text())
+    start = spec["incidents"][0]["start"]
+    scored.write_text(json.dumps({**spec, "tolerance_steps": 4, "scored_from": {"booking-api-2": start - 3600}}))
+    assert main(["evaluate", "--events", str(events), str(data), str(scored), "--json"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    assert report["recall"] == 1.0 and report["tolerance_seconds"] == 4 * spec["step_seconds"]
+    # Scored time: three entities whole (1500 vectors each), booking-api-2 (ts 1780000004 + 30 k, k < 1500)
+    # from 1780027004 - 3600 = 1780023404 on: k >= 780, 720 vectors; 30 s each.
+    assert spec["step_seconds"] == 30.0 and start == 1780027004.0
+    assert report["scored_entity_days"] == pytest.approx((3 * 1500 + 720) * 30 / 86400)
+    assert report["point_adjusted"]["f1"] > 0 and "inflates" in report["point_adjusted"]["convention"]
+
+
 def test_cli_scores_an_events_file(tmp_path, capsys):
     data, labels = _files("single_shift")
     events = tmp_path / "empty.jsonl"
@@ -83,11 +110,16 @@ def test_cli_scores_an_events_file(tmp_path, capsys):
     (["missing.jsonl", "LABELS"], "missing.jsonl"),
     (["INPUT", "missing.labels.json"], "missing.labels.json"),
     (["INPUT"], "takes INPUT LABELS"),
-    (["--events", "e.jsonl", "INPUT", "LABELS"], "takes EVENTS LABELS"),
+    (["--events", "e.jsonl", "INPUT", "LABELS", "LABELS"], "takes EVENTS [INPUT] LABELS"),
+    (["--events", "e.jsonl", "LABELS", "--config", "c.toml"], "--config only with INPUT"),
+    (["INPUT", "BAD_LABELS"], "scored_from 'booking-api-2': must be a finite number"),
 ])
 def test_cli_errors_are_one_line_with_exit_2(tmp_path, capsys, args, message):
     data, labels = _files("single_shift")
-    real = {"INPUT": str(data), "LABELS": str(labels), "missing.jsonl": str(tmp_path / "missing.jsonl")}
+    bad = tmp_path / "bad.labels.json"
+    bad.write_text(json.dumps({**json.loads(labels.read_text()), "scored_from": {"booking-api-2": "soon"}}))
+    real = {"INPUT": str(data), "LABELS": str(labels), "missing.jsonl": str(tmp_path / "missing.jsonl"),
+            "BAD_LABELS": str(bad)}
     assert main(["evaluate", *[real.get(a, a) for a in args]]) == 2
     err = capsys.readouterr().err.strip()
     assert err.startswith("shiftsieve: error:") and message in err and "\n" not in err
