@@ -33,7 +33,7 @@ from typing import NamedTuple
 import numpy as np
 from scipy.special import chdtri, erf, ndtri
 
-from .decision import QUIET, AlertTracker, DecisionConfig, Transition
+from .decision import FIRING, QUIET, AlertTracker, DecisionConfig, Transition
 from .dictionary import build_dictionary, column_scales, metric_effect
 from .lasso import projected_residual, refit_solution, solve_projected_lasso
 from .mmv import MMVResult, group_lasso_mmv, msbl
@@ -340,6 +340,9 @@ class EntityDetector:
     #: POT estimate of the 1e-3 quantile over lambda has 5/50/95/99th percentiles 0.85, 1.00,
     #: 1.18 and 1.28 (measured, 4,000 columns), so a Gaussian metric keeps kappa = 1 in ~98 %.
     MIN_TAIL_FACTOR = 1.25
+    #: Step of the online tail tracker (see :meth:`_track_tails`): a selection raises a metric's
+    #: threshold by ~5 %, and 1 / false_alarm quiet samples lower it by as much.
+    TAIL_LEARNING_RATE = 0.05
 
     #: Columns M-SBL starts from in a joint-window localisation (the most correlated with the
     #: window). Measured on bench_service's stream (n = 200, 12 events): the localisation went
@@ -443,9 +446,11 @@ class EntityDetector:
             effect[support] = effect_rows = metric_effect(coef_rows, phi)
             shift_sigma[support] = effect_rows / alert_scale   # zero wherever unobserved
             Z[support] -= effect_rows   # Z is ours: from here on it is the cleaned signal
+        firing_before = self.tracker.state[:n] == FIRING
         transitions = self._decide(X, ts, support, coef_rows, fit.coef, fit.residual, coords, shift_sigma)
         squares = fit.residual * fit.residual   # zero at unobserved entries
         self._learn(Z, present, mask, effect, coords, squares, support, selected, transitions)
+        self._track_tails(selected, B, firing_before, transitions)
         if not modelled.all():
             self._fold_in(Z, present & settled & ~modelled, coords)
         if leading:   # rows refer to the caller's batch, which began with warm-up vectors
@@ -616,6 +621,30 @@ class EntityDetector:
         self.tail_factor[ready] = 1.0
         self.admitted = self.admitted.copy()
         self.admitted[ready] = True
+
+    def _track_tails(self, selected: np.ndarray, B: int, firing_before: np.ndarray,
+                     transitions: list[Transition]) -> None:
+        """Keep each metric's selection rate at ``false_alarm`` as its residuals drift away from
+        the warm-up's: the tail factor follows a stochastic-approximation quantile tracker
+        (Robbins & Monro 1951), ``kappa <- kappa exp(rate (selected - B false_alarm))``, which
+        settles where selections happen at the target rate.
+
+        A metric takes part when it ends the batch quiet, was not firing at its start and is in
+        none of its transitions: a confirmed shift is not a tail to calibrate away, and one still
+        pending at the end of a batch may be a slow ramp on its way to firing (counting it would
+        raise the ramp's bar ahead of it).  Selections that never confirm are what the target
+        is about.
+        ``kappa`` stays in ``[1, MAX_TAIL_FACTOR]``; ``selected`` (support rows, n) holds the
+        LASSO's selections.
+        """
+        n = self.n_metrics
+        counts = selected.sum(axis=0) if selected.size else np.zeros(n)
+        step = self.TAIL_LEARNING_RATE * (counts - B * self.config.false_alarm)
+        calm = ~firing_before & (self.tracker.state[:n] == QUIET)
+        for t in transitions:
+            calm[t.metrics[t.metrics < n]] = False
+        step[~calm] = 0.0
+        self.tail_factor = np.clip(self.tail_factor * np.exp(step), 1.0, self.MAX_TAIL_FACTOR)
 
     def _update_residual_scale(self, squares: np.ndarray, mask: np.ndarray | None, support: np.ndarray,
                                selected: np.ndarray) -> None:

@@ -144,3 +144,26 @@ def test_an_owned_metric_is_never_selected():
     out = det.process(X[2000:2064], np.arange(2000.0, 2064.0))
     assert not out.shift_sigma[:, 29].any()
     assert all(29 not in t.metrics for t in out.transitions)
+
+
+def test_tail_factors_follow_residuals_that_grow_heavy_tails_after_warm_up():
+    """A metric that gains heavy-tailed noise after warm-up (Student t, 2 degrees of freedom,
+    scaled to the same MAD) would be selected several times as often as the target; the online
+    tail tracker brings its selection rate back to false_alarm. Checked after a settling period
+    against the binomial 99.9 % upper bound at twice the target (scipy.stats.binom), while a
+    Gaussian metric keeps kappa near 1."""
+    from scipy import stats
+    X, _ = shared_stream(11, samples=30000)
+    rng = np.random.default_rng(11)
+    heavy = stats.t.rvs(df=2, size=X.shape[0], random_state=rng) * (stats.norm.ppf(0.75) / stats.t.ppf(0.75, df=2))
+    X[600:, 3] += heavy[600:]   # metric 3 gains heavy-tailed noise after warm-up
+    det = EntityDetector(X.shape[1], np.zeros(X.shape[1], bool), DetectorConfig(warmup=540, rank=3))
+    flags = []
+    for s in range(0, X.shape[0], 64):
+        out = det.process(X[s:s + 64], np.arange(s, min(s + 64, X.shape[0]), dtype=float))
+        if s >= 10000:
+            flags.append(out.shift_sigma[:, 3] != 0)
+    flags = np.concatenate(flags)
+    assert det.tail_factor[3] > 1.5
+    assert flags.sum() <= stats.binom.ppf(0.999, flags.size, 2 * det.config.false_alarm)
+    assert np.median(det.tail_factor) < 1.15   # the tracker jitters by ~5 % a selection around 1
