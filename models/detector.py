@@ -353,6 +353,11 @@ class EntityDetector:
     #: Normalised values are clipped here before scoring: a value 1e300 away would overflow the
     #: squares of the solver; a billion robust sigmas is still an unmistakable shift.
     Z_LIMIT = 1e9
+    #: The solver sees normalised values winsorised here, and a selected metric's shift gets the
+    #: excess back: the solver stops at a duality gap relative to ||P z||^2, so one entry of 1e9
+    #: let it stop with shifts of ~1e10 on every other metric (a jump to 1e300 on one of 20
+    #: metrics; winsorised at 1e3 still ~10 sigmas on the others, at 100 none).
+    SOLVE_LIMIT = 100.0
     #: Window residuals are clipped here (residual sigmas): a larger value says no more about which
     #: metric moved, and M-SBL's covariance ``I + A Gamma A^T`` would stop being numerically positive
     #: definite (seen with a jump of 1e12).
@@ -431,6 +436,10 @@ class EntityDetector:
         # residual by 1 / (1 - leverage) and swing the coordinates, moving every expected value.
         penalty[:n][self.leverage() > self.MAX_SCORED_LEVERAGE] = np.inf
         Zo = Z if mask is None else np.where(mask, Z, 0.0)   # the solver fixes unobserved columns at 0
+        limit = self.SOLVE_LIMIT
+        gross = Zo.max(initial=0.0) > limit or Zo.min(initial=0.0) < -limit
+        if gross:   # the solver sees winsorised values; the excess is added to the selected shifts below
+            Zw, Zo = Zo, np.clip(Zo, -limit, limit)
         fit = solve_projected_lasso(Zo, U, penalty, phi=phi, mask=mask, init=self.warm_start, tol=cfg.tol,
                                     max_iter=cfg.max_iter, lipschitz=self._lipschitz, check_input=False)
         # Least-squares refit of the selected shifts (unbiased magnitudes). Shifts live in the
@@ -443,7 +452,10 @@ class EntityDetector:
         if support.size:
             coords = coords.copy()
             coords[support] = coords_rows
-            effect[support] = effect_rows = metric_effect(coef_rows, phi)
+            effect_rows = metric_effect(coef_rows, phi)
+            if gross:
+                effect_rows += np.where(effect_rows != 0, Zw[support] - Zo[support], 0.0)
+            effect[support] = effect_rows
             shift_sigma[support] = effect_rows / alert_scale   # zero wherever unobserved
             Z[support] -= effect_rows   # Z is ours: from here on it is the cleaned signal
         firing_before = self.tracker.state[:n] == FIRING
