@@ -353,11 +353,9 @@ class EntityDetector:
     #: Normalised values are clipped here before scoring: a value 1e300 away would overflow the
     #: squares of the solver; a billion robust sigmas is still an unmistakable shift.
     Z_LIMIT = 1e9
-    #: The solver sees normalised values winsorised here, and a selected metric's shift gets the
-    #: excess back: the solver stops at a duality gap relative to ||P z||^2, so one entry of 1e9
-    #: let it stop with shifts of ~1e10 on every other metric (a jump to 1e300 on one of 20
-    #: metrics; winsorised at 1e3 still ~10 sigmas on the others, at 100 none).
-    SOLVE_LIMIT = 100.0
+    #: An entry this many times farther out than its row's median |z| (plus one) is a gross error
+    #: for the projection (see :meth:`_start`).
+    GROSS_FACTOR = 1e3
     #: Window residuals are clipped here (residual sigmas): a larger value says no more about which
     #: metric moved, and M-SBL's covariance ``I + A Gamma A^T`` would stop being numerically positive
     #: definite (seen with a jump of 1e12).
@@ -436,11 +434,7 @@ class EntityDetector:
         # residual by 1 / (1 - leverage) and swing the coordinates, moving every expected value.
         penalty[:n][self.leverage() > self.MAX_SCORED_LEVERAGE] = np.inf
         Zo = Z if mask is None else np.where(mask, Z, 0.0)   # the solver fixes unobserved columns at 0
-        limit = self.SOLVE_LIMIT
-        gross = Zo.max(initial=0.0) > limit or Zo.min(initial=0.0) < -limit
-        if gross:   # the solver sees winsorised values; the excess is added to the selected shifts below
-            Zw, Zo = Zo, np.clip(Zo, -limit, limit)
-        fit = solve_projected_lasso(Zo, U, penalty, phi=phi, mask=mask, init=self.warm_start, tol=cfg.tol,
+        fit = solve_projected_lasso(Zo, U, penalty, phi=phi, mask=mask, init=self._start(Zo, mask), tol=cfg.tol,
                                     max_iter=cfg.max_iter, lipschitz=self._lipschitz, check_input=False)
         # Least-squares refit of the selected shifts (unbiased magnitudes). Shifts live in the
         # few rows with a support, so everything about them is computed on those rows only.
@@ -452,10 +446,7 @@ class EntityDetector:
         if support.size:
             coords = coords.copy()
             coords[support] = coords_rows
-            effect_rows = metric_effect(coef_rows, phi)
-            if gross:
-                effect_rows += np.where(effect_rows != 0, Zw[support] - Zo[support], 0.0)
-            effect[support] = effect_rows
+            effect[support] = effect_rows = metric_effect(coef_rows, phi)
             shift_sigma[support] = effect_rows / alert_scale   # zero wherever unobserved
             Z[support] -= effect_rows   # Z is ours: from here on it is the cleaned signal
         firing_before = self.tracker.state[:n] == FIRING
@@ -472,6 +463,32 @@ class EntityDetector:
         residual_norm = np.sqrt(squares @ (1.0 / self.residual_scale ** 2))
         return self._pad(leading, BatchResult(transitions, shift_sigma, coords, residual_norm,
                                               fit.n_iter, fit.converged, units))
+
+    def _start(self, Zo: np.ndarray, mask: np.ndarray | None) -> np.ndarray:
+        """The solver's starting point: the warm start, and in rows with a gross entry that entry's
+        residual from baseline coordinates fitted without it.
+
+        The solver stops at a duality gap relative to ``||P z||^2``; from the warm start, one
+        entry of 1e9 let it stop with shifts of ~1e10 on every metric (a jump to 1e300 on one of
+        20), because the entry's pull on the coordinates spreads over all of them.  Started at
+        the robust solution it converges there (the problem is convex: only the path changes).
+        """
+        if not (Zo.max(initial=0.0) > self.GROSS_FACTOR or Zo.min(initial=0.0) < -self.GROSS_FACTOR):
+            return self.warm_start   # the usual case: nothing can be gross (typical >= 1)
+        n = self.n_metrics
+        far = np.abs(Zo)
+        typical = np.median(far, axis=1, keepdims=True) + 1.0
+        gross = far > self.GROSS_FACTOR * typical
+        if not gross.any():
+            return self.warm_start
+        rows = np.flatnonzero(gross.any(axis=1))
+        keep = ~gross[rows] if mask is None else mask[rows] & ~gross[rows]
+        _, coords = projected_residual(Zo[rows], self.baseline.U, np.zeros_like(Zo[rows]), mask=keep)
+        start = np.tile(self.warm_start, (Zo.shape[0], 1))
+        metric_start = start[rows, :n]
+        metric_start[gross[rows]] = (Zo[rows] - coords @ self.baseline.U.T)[gross[rows]]
+        start[rows, :n] = metric_start
+        return start
 
     def _decide(self, X: np.ndarray, ts: np.ndarray, support: np.ndarray, coef_rows: np.ndarray,
                 coef_lasso: np.ndarray, residual: np.ndarray, coords: np.ndarray,
