@@ -402,13 +402,12 @@ def predicted_incidents(events: Sequence[dict]) -> list[PredictedIncident]:
 
 
 def _match(label: LabelledIncident, p: PredictedIncident) -> Match:
-    top = {name for name, _ in p.metrics[: len(label.metrics)]}
     rates = {}
     for name in RANKINGS:
         ranking = p.ranking(name)
         if ranking is not None:
             rates[name] = tuple(hit_rate(ranking, label.metrics, percent) for percent in HIT_RATE_PERCENTS)
-    return Match(label, p, p.onset - label.start, len(top & set(label.metrics)) / len(label.metrics), rates)
+    return Match(label, p, p.onset - label.start, rates["metrics"][0], rates)   # localisation: HitRate@100%
 
 
 def _mean_hit_rates(matches: Sequence[Match]) -> dict[str, HitRate]:
@@ -547,7 +546,7 @@ def format_table(evaluation: Evaluation) -> str:
                      f"precision {pa.precision:.3f}  recall {pa.recall:.3f}  F1 {pa.f1:.3f}")
     for m in e.matches:
         lines.append(f"  found  {m.label.entity}  start {m.label.start:.1f}  delay {m.delay_seconds:+.1f} s"
-                     f"  loc {m.localisation:.2f}  HitRate {_rates(m.hit_rates)}  {m.predicted.incident}"
+                     f"  HitRate {_rates(m.hit_rates)}  {m.predicted.incident}"
                      f"  top {_top(m.predicted)}")
     for lab in e.missed:
         lines.append(f"  missed {lab.entity}  start {lab.start:.1f}  end {lab.end:.1f}  {','.join(lab.metrics)}")
