@@ -341,8 +341,12 @@ class EntityDetector:
     #: 1.18 and 1.28 (measured, 4,000 columns), so a Gaussian metric keeps kappa = 1 in ~98 %.
     MIN_TAIL_FACTOR = 1.25
     #: Step of the online tail tracker (see :meth:`_track_tails`): a selection raises a metric's
-    #: threshold by ~5 %, and 1 / false_alarm quiet samples lower it by as much.
-    TAIL_LEARNING_RATE = 0.05
+    #: threshold by ~2 %, and 1 / false_alarm quiet samples lower it by as much.
+    TAIL_LEARNING_RATE = 0.02
+    #: Floor of the tracked tail factor. A floor at 1 biases a Gaussian metric's factor upwards
+    #: (the tracker's jitter is cut off below): 18 % fewer flags than the target on a null
+    #: stream. Light-tailed residuals may need less than lambda.
+    MIN_TRACKED_TAIL_FACTOR = 0.8
 
     #: Columns M-SBL starts from in a joint-window localisation (the most correlated with the
     #: window). Measured on bench_service's stream (n = 200, 12 events): the localisation went
@@ -663,7 +667,7 @@ class EntityDetector:
         pending at the end of a batch may be a slow ramp on its way to firing (counting it would
         raise the ramp's bar ahead of it).  Selections that never confirm are what the target
         is about.
-        ``kappa`` stays in ``[1, MAX_TAIL_FACTOR]``; ``selected`` (support rows, n) holds the
+        ``kappa`` stays in ``[MIN_TRACKED_TAIL_FACTOR, MAX_TAIL_FACTOR]``; ``selected`` (support rows, n) holds the
         LASSO's selections.
         """
         n = self.n_metrics
@@ -673,7 +677,7 @@ class EntityDetector:
         for t in transitions:
             calm[t.metrics[t.metrics < n]] = False
         step[~calm] = 0.0
-        self.tail_factor = np.clip(self.tail_factor * np.exp(step), 1.0, self.MAX_TAIL_FACTOR)
+        self.tail_factor = np.clip(self.tail_factor * np.exp(step), self.MIN_TRACKED_TAIL_FACTOR, self.MAX_TAIL_FACTOR)
 
     def _update_residual_scale(self, squares: np.ndarray, mask: np.ndarray | None, support: np.ndarray,
                                selected: np.ndarray) -> None:

@@ -174,6 +174,15 @@ def test_one_sample_per_message_encoding_assembles_the_same_incident(tmp_path):
     assert [(e["entity"], e["metrics"][0]["name"]) for e in onsets] == [("booking-api-2", "db_pool_wait_p99_ms")]
 
 
+def _found_the_fault(events: list[dict]) -> bool:
+    """Whether an incident of the faulty entity opened during the labelled fault of single_shift
+    (a model that warmed up on the fault may still alert later, when the metric returns to normal:
+    its warm-up learned part of the fault as normal)."""
+    label = json.loads((scenarios()["single_shift"].parent / "single_shift.labels.json").read_text())["incidents"][0]
+    return any(e.get("onset") and e["entity"] == label["entity"] and label["start"] - 120 <= e["ts"] <= label["end"]
+               for e in events)
+
+
 def test_restart_restores_models_from_the_state_directory(tmp_path):
     """Stopped after 800 of 1500 samples and restarted on the rest: the second process restores
     every entity (no new warm-up, which alone would take 540 samples and swallow the fault at
@@ -191,7 +200,7 @@ def test_restart_restores_models_from_the_state_directory(tmp_path):
     onsets = [(e["entity"], e["metrics"][0]["name"]) for e in second if e.get("onset")]
     assert onsets == [("booking-api-2", "db_pool_wait_p99_ms")]
     alone = _run_service(tmp_path / "c", b"\n".join(lines[cut:]) + b"\n", {})   # control: no state
-    assert ("booking-api-2", "db_pool_wait_p99_ms") not in [(e["entity"], e["metrics"][0]["name"]) for e in alone]
+    assert not _found_the_fault(alone)
 
 
 def test_a_restarted_service_reaches_the_state_of_an_uninterrupted_run(tmp_path):
@@ -259,7 +268,7 @@ def test_a_corrupt_snapshot_is_reported_and_its_entity_warms_up_again(tmp_path):
     warning = second.stderr.decode()
     assert str(bad) in warning and "warms up again" in warning
     events = [json.loads(l) for l in (tmp_path / "second.jsonl").read_text().splitlines()]
-    assert "booking-api-2" not in {e["entity"] for e in events}
+    assert not _found_the_fault(events)
     engine = Engine.from_config(load_config(None))
     for entity in directory.entities():   # every snapshot loads, the rewritten one included
         assert directory.load(entity, engine.rules, engine.detector_config)[0].entity == entity
