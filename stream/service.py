@@ -57,20 +57,26 @@ class LineSource:
         self._thread.start()
 
     def _read(self, fd: int) -> None:
-        number, pending = 0, b""
+        # cut_nonblank: the head kept of an over-long pending line is all that is left of it, so
+        # whether the line was blank is decided before cutting (a line of 5,000 spaces and an "x"
+        # is a line to count and dead-letter, not a blank one).
+        number, pending, cut_nonblank = 0, b"", False
         try:
             while chunk := os.read(fd, 1 << 16):
                 *lines, pending = (pending + chunk).split(b"\n")
-                for line in lines:
+                for i, line in enumerate(lines):
                     number += 1
                     line = line.rstrip(b"\r")
                     if number == 1 and line.startswith(b"\xef\xbb\xbf") and line[3:].strip():
                         line = line[3:]   # a UTF-8 BOM, stripped as replay does (a BOM alone stays a bad line)
-                    if line.strip():
+                    if line.strip() or (i == 0 and cut_nonblank):
                         self._queue.put((number, line))   # blocks when the detector falls behind
+                if lines:
+                    cut_nonblank = False
                 if len(pending) > self.max_line:   # keep a line's head only: the decoder rejects it as too large
+                    cut_nonblank = cut_nonblank or bool(pending.strip())
                     pending = pending[: self.max_line + 1]
-            if pending.strip():
+            if pending.strip() or cut_nonblank:
                 self._queue.put((number + 1, pending.rstrip(b"\r")))
         finally:
             os.close(fd)

@@ -34,7 +34,7 @@ from typing import Any, Callable
 import numpy as np
 import orjson
 import pytest
-from hypothesis import HealthCheck, assume, given, settings
+from hypothesis import HealthCheck, assume, example, given, settings
 from hypothesis import strategies as st
 from prometheus_client.parser import text_string_to_metric_families
 
@@ -602,6 +602,9 @@ def dead_lettered(service: Service) -> dict[str, float]:
 @settings(max_examples=6, deadline=None, suppress_health_check=HEALTH)
 @given(lines=jsonl_lines.filter(lambda ls: any(line.strip() for line in ls)), ends=st.lists(endings, min_size=1, max_size=2),
        final=st.booleans())
+# Found by hypothesis: a last line without its newline, over the size limit, whose head is
+# whitespace was cut to that head and then taken for blank: neither counted nor dead-lettered.
+@example(lines=[_good_line("e1", 0, 0.0, 0.0), b" " * 3000 + b"x"], ends=[b"\n"], final=False)
 def test_service_counts_add_up(tmp_path: Path, lines: list[bytes], ends: list[bytes], final: bool) -> None:
     data = join_lines(lines, ends, final)
     source, dead = tmp_path / "in.jsonl", tmp_path / "dead.jsonl"
