@@ -14,7 +14,7 @@ observed coordinates of sample ``b`` (``M_b = diag(mask_b)``):
 ``P_b`` is a symmetric idempotent matrix, so ``||P_b (z - Phi s)|| =
 ||P_b z - P_b Phi s||`` and the problem is an ordinary LASSO with design
 ``P_b Phi`` and response ``P_b z``. This is what eliminating the baseline
-coordinates ``w`` from ``z = U w + Phi s + e`` leaves (DESIGN.md section 1).
+coordinates ``w`` from the model ``z = U w + Phi s + e`` leaves.
 
 Solver: accelerated proximal gradient (FISTA, Beck & Teboulle 2009) with
 soft-thresholding and the gradient adaptive restart of O'Donoghue & Candes

@@ -1,4 +1,4 @@
-"""Decoding of the vector message (DESIGN.md section 2) into a validated `Vector`.
+"""Decoding of the vector message (DEVELOPERS.md, Contracts) into a validated `Vector`.
 
 One JSON object per Kafka message value or per line of a .jsonl file::
 

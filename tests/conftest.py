@@ -31,7 +31,7 @@ import pytest
 REQUIRE_ENV = "SHIFTSIEVE_REQUIRE_BROKER"
 BIN_ENV = "SHIFTSIEVE_TANSU_BIN"
 START_TIMEOUT_S = 15.0
-TEST_API_VERSION = (2, 5, 0)  # DESIGN.md section 4: groups of two settle on Tansu with this
+TEST_API_VERSION = (2, 5, 0)  # DEVELOPERS.md, Facts of this environment: groups of two settle on Tansu with this
 
 
 def _unavailable(reason: str):

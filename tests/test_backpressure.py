@@ -38,7 +38,7 @@ import numpy as np
 import orjson
 from kafka import KafkaProducer
 
-API = (2, 5, 0)   # DESIGN.md section 4: consumer groups settle on Tansu with this version
+API = (2, 5, 0)   # DEVELOPERS.md, Facts of this environment: consumer groups settle on Tansu with this version
 ENTITIES = ["locks-upper", "locks-lower", "weir-east", "weir-west"]   # the fictional canal's sites
 N_METRICS, RANK = 50, 4
 BACKLOG = 30_000

@@ -3,7 +3,7 @@
 The labels are the ground truth the generator planted (replay_data/generate.py); the
 scoring rules are those of `shiftsieve evaluate`.  Expected behaviour, stated as facts of
 the trade: a coherent traffic surge is shared movement and must raise no alert (the point
-of a low-rank baseline, DESIGN.md section 1); a planted shift must be found, with a metric
+of a low-rank baseline, README.md "How it works, briefly"); a planted shift must be found, with a metric
 that truly shifted ranked first when the incident opens.
 """
 

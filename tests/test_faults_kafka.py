@@ -27,7 +27,7 @@ from kafka.admin import NewTopic
 
 from conftest import exposition_samples, free_port
 
-API = (2, 5, 0)   # DESIGN.md section 4: consumer groups settle on this broker with this version
+API = (2, 5, 0)   # DEVELOPERS.md, Facts of this environment: consumer groups settle on this broker with this version
 N_METRICS, SHIFT, SHIFTED_METRIC = 20, 12.0, "m07"
 T0 = 1_796_000_000.0   # 2026-11-30, inside the decoder's accepted time range
 

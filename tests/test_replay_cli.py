@@ -1,4 +1,4 @@
-"""`shiftsieve replay`, `evaluate` and `demo` as other tools call them (DESIGN.md section 2)."""
+"""`shiftsieve replay`, `evaluate` and `demo` as other tools call them (DEVELOPERS.md, Contracts)."""
 
 import gzip
 import json

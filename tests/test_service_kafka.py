@@ -13,7 +13,7 @@ from kafka import KafkaConsumer, KafkaProducer
 from conftest import free_port
 from shiftsieve.stream.demo import scenarios
 
-API = (2, 5, 0)   # DESIGN.md section 4: the version that makes consumer groups settle on this broker
+API = (2, 5, 0)   # DEVELOPERS.md, Facts of this environment: consumer groups settle on this broker with it
 
 
 

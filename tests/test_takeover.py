@@ -20,7 +20,7 @@ from pathlib import Path
 import numpy as np
 from kafka import KafkaProducer
 
-API = (2, 5, 0)   # DESIGN.md section 4: groups of two settle on this broker with this version
+API = (2, 5, 0)   # DEVELOPERS.md, Facts of this environment: groups of two settle on this broker with this version
 ENTITIES = ["quay-north", "quay-south", "tickets-1", "tickets-2"]   # the fictional ferry line's services
 N_METRICS, WARMUP, QUIET, SHIFTED = 20, 200, 300, 100
 SHIFTED_METRIC = "m07"

@@ -49,7 +49,7 @@ from pathlib import Path
 import numpy as np
 import orjson
 
-API = (2, 5, 0)          # ../shared/DESIGN.md section 4: consumer groups settle on Tansu with this
+API = (2, 5, 0)          # DEVELOPERS.md, Facts of this environment: consumer groups settle on Tansu with this
 T0 = 1_796_000_000.0     # first ts, inside the decoder's accepted window (2000 .. 2100)
 STEP = 60.0              # seconds between an entity's vectors
 N_METRICS = 200

@@ -49,7 +49,7 @@ from pathlib import Path
 import numpy as np
 import orjson
 
-API = (2, 5, 0)          # ../shared/DESIGN.md section 4
+API = (2, 5, 0)          # DEVELOPERS.md, Facts of this environment: consumer groups settle on Tansu with this
 T0 = 1_796_000_000.0     # first ts, inside the decoder's accepted window
 STEP = 60.0
 RANK = 8
