@@ -35,12 +35,12 @@ from scipy.special import chdtri, erf, ndtri
 
 from .decision import FIRING, QUIET, AlertTracker, DecisionConfig, Transition
 from .dictionary import build_dictionary, column_scales, metric_effect
-from .lasso import projected_residual, refit_solution, solve_projected_lasso
+from .lasso import gross_start, projected_residual, refit_solution, solve_projected_lasso
 from .mmv import MMVResult, group_lasso_mmv, msbl
 from .normaliser import (MAD_TO_SIGMA, RobustNormaliser, column_median, decay_for_halflife, from_metric_units,
                          to_metric_units)
-from .subspace import SubspaceTracker, impute_low_rank
-from .tail import tail_quantile
+from .subspace import SubspaceTracker
+from .tail import fitted_tail_factors, tracked_tail_factors
 
 
 def threshold_for(false_alarm: float) -> float:
@@ -83,6 +83,14 @@ def truncated_second_moment(c: float | np.ndarray) -> float | np.ndarray:
     density = np.exp(-0.5 * c * c) / math.sqrt(2.0 * math.pi)
     moment = 1.0 - 2.0 * c * density / inside
     return float(moment) if moment.ndim == 0 else moment
+
+
+def _robust_scale(R: np.ndarray) -> np.ndarray:
+    """Per column of ``R`` (NaN = missing) ``MAD_TO_SIGMA`` times the median of ``|R|`` (NaN for a
+    column with no value): the robust scale of a residual centred at 0."""
+    with warnings.catch_warnings():   # metrics absent from the warm-up: all-NaN columns
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return MAD_TO_SIGMA * column_median(np.abs(R))
 
 
 @dataclass(frozen=True)
@@ -333,20 +341,6 @@ class EntityDetector:
     #: cannot own a baseline direction; recurring patterns such as batch jobs stay below it and are
     #: learned (clipping them harder would bend their direction).
     WARMUP_CLIP = 50.0
-    #: Cap on the tail factor: a metric whose residual tail asks for more than this many times
-    #: the Gaussian threshold is still judged (its shifts must be very large to alert).
-    MAX_TAIL_FACTOR = 10.0
-    #: Tail factors below this are estimation noise, not a heavy tail: on 540 Gaussian samples the
-    #: POT estimate of the 1e-3 quantile over lambda has 5/50/95/99th percentiles 0.85, 1.00,
-    #: 1.18 and 1.28 (measured, 4,000 columns), so a Gaussian metric keeps kappa = 1 in ~98 %.
-    MIN_TAIL_FACTOR = 1.25
-    #: Step of the online tail tracker (see :meth:`_track_tails`): a selection raises a metric's
-    #: threshold by ~2 %, and 1 / false_alarm quiet samples lower it by as much.
-    TAIL_LEARNING_RATE = 0.02
-    #: Floor of the tracked tail factor. A floor at 1 biases a Gaussian metric's factor upwards
-    #: (the tracker's jitter is cut off below): 18 % fewer flags than the target on a null
-    #: stream. Light-tailed residuals may need less than lambda.
-    MIN_TRACKED_TAIL_FACTOR = 0.8
 
     #: Columns M-SBL starts from in a joint-window localisation (the most correlated with the
     #: window). Measured on bench_service's stream (n = 200, 12 events): the localisation went
@@ -357,9 +351,6 @@ class EntityDetector:
     #: Normalised values are clipped here before scoring: a value 1e300 away would overflow the
     #: squares of the solver; a billion robust sigmas is still an unmistakable shift.
     Z_LIMIT = 1e9
-    #: An entry this many times farther out than its row's median |z| (plus one) is a gross error
-    #: for the projection (see :meth:`_start`).
-    GROSS_FACTOR = 1e3
     #: Window residuals are clipped here (residual sigmas): a larger value says no more about which
     #: metric moved, and M-SBL's covariance ``I + A Gamma A^T`` would stop being numerically positive
     #: definite (seen with a jump of 1e12).
@@ -377,37 +368,24 @@ class EntityDetector:
         """Per metric the robust scale of its error when predicted from the other metrics through
         the basis: the in-sample residual's MAD over ``1 - leverage`` (a direction a metric owns
         predicts nothing about it; leave-one-out algebra of projections)."""
-        filled = impute_low_rank(Z, tracker.rank)
-        R = np.where(np.isfinite(Z), filled - (filled @ tracker.U) @ tracker.U.T, np.nan)
+        mad = _robust_scale(tracker.residuals(Z))
         leverage = np.einsum("ij,ij->i", tracker.U, tracker.U)
-        with warnings.catch_warnings():   # metrics absent from the warm-up: all-NaN columns
-            warnings.simplefilter("ignore", RuntimeWarning)
-            mad = MAD_TO_SIGMA * column_median(np.abs(R))
         return np.where(np.isfinite(mad), mad / np.maximum(1.0 - leverage, 0.01), 0.0)
 
     @staticmethod
     def _warmup_residual_scale(Z: np.ndarray, tracker: SubspaceTracker, false_alarm: float,
                                floor: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Robust per-metric scale ``d`` of in-sample residuals, corrected for the r fitted
-        directions and never below ``floor`` (the quantisation noise), and the tail factor ``kappa >= 1``: how much higher than ``lambda d`` the
-        residual's own ``1 - false_alarm`` quantile lies (:func:`.tail.tail_quantile`).
-
-        Alerts are judged on ``d kappa``, so a metric whose residuals are heavy-tailed, bursty or
-        discrete is flagged at the target rate instead of on every burst; ``kappa`` is never below
-        1 (no metric is judged more sensitively than the Gaussian target says), and is 1 unless
-        the tail is clearly heavier than a Gaussian's (``MIN_TAIL_FACTOR``).
+        directions and never below ``floor`` (the quantisation noise), and the tail factors
+        (:func:`.tail.fitted_tail_factors`): alerts are judged on ``d kappa``, so a metric whose
+        residuals are heavy-tailed, bursty or discrete is flagged at the target rate instead of
+        on every burst.
         """
-        filled = impute_low_rank(Z, tracker.rank)
-        R = np.where(np.isfinite(Z), filled - (filled @ tracker.U) @ tracker.U.T, np.nan)
+        R = tracker.residuals(Z)
         W = Z.shape[0]
-        with warnings.catch_warnings():   # metrics absent from the warm-up: all-NaN columns
-            warnings.simplefilter("ignore", RuntimeWarning)
-            mad = MAD_TO_SIGMA * column_median(np.abs(R)) * math.sqrt(W / max(W - tracker.rank, 1))
+        mad = _robust_scale(R) * math.sqrt(W / max(W - tracker.rank, 1))
         d = np.maximum(np.where(np.isfinite(mad) & (mad > 1e-9), mad, 1.0), floor)
-        quantile = tail_quantile(R / d, false_alarm)
-        kappa = np.where(np.isfinite(quantile), quantile / threshold_for(false_alarm), 1.0)
-        kappa = np.where(kappa >= EntityDetector.MIN_TAIL_FACTOR, kappa, 1.0)
-        return d, np.minimum(kappa, EntityDetector.MAX_TAIL_FACTOR)
+        return d, fitted_tail_factors(R / d, false_alarm, threshold_for(false_alarm))
 
     @property
     def alert_scale(self) -> np.ndarray:
@@ -438,7 +416,7 @@ class EntityDetector:
         # residual by 1 / (1 - leverage) and swing the coordinates, moving every expected value.
         penalty[:n][self.leverage() > self.MAX_SCORED_LEVERAGE] = np.inf
         Zo = Z if mask is None else np.where(mask, Z, 0.0)   # the solver fixes unobserved columns at 0
-        fit = solve_projected_lasso(Zo, U, penalty, phi=phi, mask=mask, init=self._start(Zo, mask), tol=cfg.tol,
+        fit = solve_projected_lasso(Zo, U, penalty, phi=phi, mask=mask, init=gross_start(Zo, U, self.warm_start, mask=mask), tol=cfg.tol,
                                     max_iter=cfg.max_iter, lipschitz=self._lipschitz, check_input=False)
         # Least-squares refit of the selected shifts (unbiased magnitudes). Shifts live in the
         # few rows with a support, so everything about them is computed on those rows only.
@@ -467,32 +445,6 @@ class EntityDetector:
         residual_norm = np.sqrt(squares @ (1.0 / self.residual_scale ** 2))
         return self._pad(leading, BatchResult(transitions, shift_sigma, coords, residual_norm,
                                               fit.n_iter, fit.converged, units))
-
-    def _start(self, Zo: np.ndarray, mask: np.ndarray | None) -> np.ndarray:
-        """The solver's starting point: the warm start, and in rows with a gross entry that entry's
-        residual from baseline coordinates fitted without it.
-
-        The solver stops at a duality gap relative to ``||P z||^2``; from the warm start, one
-        entry of 1e9 let it stop with shifts of ~1e10 on every metric (a jump to 1e300 on one of
-        20), because the entry's pull on the coordinates spreads over all of them.  Started at
-        the robust solution it converges there (the problem is convex: only the path changes).
-        """
-        if not (Zo.max(initial=0.0) > self.GROSS_FACTOR or Zo.min(initial=0.0) < -self.GROSS_FACTOR):
-            return self.warm_start   # the usual case: nothing can be gross (typical >= 1)
-        n = self.n_metrics
-        far = np.abs(Zo)
-        typical = np.median(far, axis=1, keepdims=True) + 1.0
-        gross = far > self.GROSS_FACTOR * typical
-        if not gross.any():
-            return self.warm_start
-        rows = np.flatnonzero(gross.any(axis=1))
-        keep = ~gross[rows] if mask is None else mask[rows] & ~gross[rows]
-        _, coords = projected_residual(Zo[rows], self.baseline.U, np.zeros_like(Zo[rows]), mask=keep)
-        start = np.tile(self.warm_start, (Zo.shape[0], 1))
-        metric_start = start[rows, :n]
-        metric_start[gross[rows]] = (Zo[rows] - coords @ self.baseline.U.T)[gross[rows]]
-        start[rows, :n] = metric_start
-        return start
 
     def _decide(self, X: np.ndarray, ts: np.ndarray, support: np.ndarray, coef_rows: np.ndarray,
                 coef_lasso: np.ndarray, residual: np.ndarray, coords: np.ndarray,
@@ -657,27 +609,20 @@ class EntityDetector:
 
     def _track_tails(self, selected: np.ndarray, B: int, firing_before: np.ndarray,
                      transitions: list[Transition]) -> None:
-        """Keep each metric's selection rate at ``false_alarm`` as its residuals drift away from
-        the warm-up's: the tail factor follows a stochastic-approximation quantile tracker
-        (Robbins & Monro 1951), ``kappa <- kappa exp(rate (selected - B false_alarm))``, which
-        settles where selections happen at the target rate.
+        """Keep each metric's selection rate at ``false_alarm`` (:func:`.tail.tracked_tail_factors`).
 
         A metric takes part when it ends the batch quiet, was not firing at its start and is in
         none of its transitions: a confirmed shift is not a tail to calibrate away, and one still
         pending at the end of a batch may be a slow ramp on its way to firing (counting it would
-        raise the ramp's bar ahead of it).  Selections that never confirm are what the target
-        is about.
-        ``kappa`` stays in ``[MIN_TRACKED_TAIL_FACTOR, MAX_TAIL_FACTOR]``; ``selected`` (support rows, n) holds the
-        LASSO's selections.
+        raise the ramp's bar ahead of it).  Selections that never confirm are what the target is
+        about.  ``selected`` (support rows, n) holds the LASSO's selections.
         """
         n = self.n_metrics
-        counts = selected.sum(axis=0) if selected.size else np.zeros(n)
-        step = self.TAIL_LEARNING_RATE * (counts - B * self.config.false_alarm)
         calm = ~firing_before & (self.tracker.state[:n] == QUIET)
         for t in transitions:
             calm[t.metrics[t.metrics < n]] = False
-        step[~calm] = 0.0
-        self.tail_factor = np.clip(self.tail_factor * np.exp(step), self.MIN_TRACKED_TAIL_FACTOR, self.MAX_TAIL_FACTOR)
+        counts = selected.sum(axis=0) if selected.size else np.zeros(n)
+        self.tail_factor = tracked_tail_factors(self.tail_factor, counts, B, self.config.false_alarm, calm)
 
     def _update_residual_scale(self, squares: np.ndarray, mask: np.ndarray | None, support: np.ndarray,
                                selected: np.ndarray) -> None:

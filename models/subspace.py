@@ -151,6 +151,12 @@ class SubspaceTracker:
         self.singular_values = sv[:rank] * weight
         return self
 
+    def residuals(self, Z: np.ndarray) -> np.ndarray:
+        """In-sample residuals of a block ``Z`` (W, n) against the basis; missing entries stay NaN
+        (the projection fills them by iterated low-rank imputation first)."""
+        filled = impute_low_rank(Z, self.rank)
+        return np.where(np.isfinite(Z), filled - (filled @ self.U) @ self.U.T, np.nan)
+
     def update(self, C: np.ndarray) -> None:
         """One block subspace-iteration step with forgetting on complete vectors ``C`` (B, n)."""
         C = np.asarray(C, dtype=float)
