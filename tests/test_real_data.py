@@ -9,9 +9,9 @@ issue about real telemetry asks: an onset detects a segment when it lies in [sta
 end], every other onset after the server's test start is a false alert, HitRate@150% as in Su et
 al., KDD 2019.
 
-The floors hold the detector at what it measured on this slice when they were set (recall 0.38,
-0.62 false alerts per entity-day, HitRate@150% of the joint-window ranking 0.51, max |shift_sigma|
-291 on the whole ASD set): a change that loses real detections, pages more, names the wrong metrics
+The floors hold the detector near what it measured on this slice when they were set (recall
+0.48, 0.65 false alerts per entity-day, HitRate@150% of the joint-window ranking 0.52; max
+|shift_sigma| 413 on the whole ASD set): a change that loses real detections, pages more, names the wrong metrics
 or reports near-constant metrics at millions of sigmas fails here.  They are not goals: the goals
 (event F1 >= 0.6 and more) are in the README's table of measured results, and not met yet.
 """
@@ -46,8 +46,8 @@ def test_the_slice_is_the_published_data_as_described(rows):
 def test_detection_and_false_alert_floors(rows):
     _, by_method = rows
     e = by_method["shiftsieve"]
-    assert e.recall >= 0.33                            # measured 0.38 (8 of 21 segments)
-    assert e.false_alerts_per_entity_day <= 0.8        # measured 0.62
+    assert e.recall >= 0.33                            # measured 0.48 (10 of 21 segments)
+    assert e.false_alerts_per_entity_day <= 0.8        # measured 0.65
     # The per-metric EWMA z-score with the same threshold and confirmation (what SREs run) pages
     # several times as often here (measured 2.73 a day, F1 0.20); shiftsieve stays ahead of it.
     assert e.f1 > by_method["ewma_zscore"].f1
@@ -57,7 +57,7 @@ def test_detection_and_false_alert_floors(rows):
 def test_named_metrics_floor(rows):
     _, by_method = rows
     window = by_method["shiftsieve"].hit_rate["msbl"]
-    assert window.matches >= 6 and window.at_150 >= 0.45   # measured 0.51
+    assert window.matches >= 6 and window.at_150 >= 0.45   # measured 0.52
 
 
 def test_no_metric_is_reported_at_an_absurd_number_of_sigmas(rows):
