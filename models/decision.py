@@ -33,7 +33,7 @@ class DecisionConfig:
     confirm_m: int = 5
     clear_sigma: float = 2.0
     clear_after: int = 5
-    adapt_after: int = 0  # 0 = never adapt
+    adapt_after: int = 1440  # 0 = never adapt
 
     def __post_init__(self) -> None:
         if not 1 <= self.confirm_m <= 63:

@@ -39,7 +39,7 @@ from .lasso import gross_start, projected_residual, refit_solution, solve_projec
 from .mmv import MMVResult, group_lasso_mmv, msbl
 from .normaliser import (MAD_TO_SIGMA, RobustNormaliser, column_median, decay_for_halflife, from_metric_units,
                          to_metric_units)
-from .subspace import SubspaceTracker
+from .subspace import DEFAULT_ENERGY, DEFAULT_HALFLIFE, DEFAULT_MAX_RANK, SubspaceTracker
 from .tail import fitted_tail_factors, tracked_tail_factors
 
 
@@ -99,9 +99,9 @@ class DetectorConfig:
 
     warmup: int = 540
     rank: int | None = None
-    energy: float = 0.99
-    max_rank: int = 8
-    baseline_halflife: float = 1440.0
+    energy: float = DEFAULT_ENERGY
+    max_rank: int = DEFAULT_MAX_RANK
+    baseline_halflife: float = DEFAULT_HALFLIFE
     normaliser_halflife: float = 1440.0
     scale_halflife: float = 720.0
     false_alarm: float = 1e-3

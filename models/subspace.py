@@ -23,6 +23,10 @@ from scipy.linalg import lapack
 
 from .normaliser import decay_for_halflife
 
+#: Defaults of the tracker's settings (share of warm-up energy the chosen rank explains, cap on
+#: that rank, half-life in samples), declared once: ``DetectorConfig`` takes its defaults from them.
+DEFAULT_ENERGY, DEFAULT_MAX_RANK, DEFAULT_HALFLIFE = 0.99, 8, 1440.0
+
 
 def noise_rank(singular_values: np.ndarray, shape: tuple[int, int]) -> int:
     """Number of singular values above the optimal hard threshold for unknown noise level.
@@ -116,8 +120,8 @@ class SubspaceTracker:
     True
     """
 
-    def __init__(self, *, rank: int | None = None, energy: float = 0.9, max_rank: int = 8,
-                 halflife: float = 1440.0) -> None:
+    def __init__(self, *, rank: int | None = None, energy: float = DEFAULT_ENERGY, max_rank: int = DEFAULT_MAX_RANK,
+                 halflife: float = DEFAULT_HALFLIFE) -> None:
         if rank is not None and rank < 1:
             raise ValueError(f"rank must be >= 1 or None (auto), got {rank!r}")
         if not 0.0 < energy <= 1.0:
