@@ -1,0 +1,59 @@
+"""``shiftsieve replay INPUT --events OUT --report DIR``: the replay feeding a collector, then the
+optional scores, comparison and tuning, then the page."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+from .collector import ReportCollector
+from .directory import ReportError, prepare_directory
+from .page import ReportInputs, write_report
+
+if TYPE_CHECKING:
+    from ..config import Config
+    from ..replay import ReplaySummary
+
+
+def replay_with_report(path: str | Path, config: "Config", *, directory: str | Path, events_path: str | None,
+                       dead_letter_path: str | None = None, labels_path: str | None = None,
+                       budget_per_day: float | None = None, quiet_until: str | None = None,
+                       progress: bool = True) -> tuple["ReplaySummary", Path]:
+    """``shiftsieve replay INPUT --events OUT --report DIR [--labels L] [--budget B] [--quiet-until TS]``:
+    the replay, then the page.  With labels: the labelled windows, the incident-level scores and
+    the method comparison (:mod:`..compare`); with a budget: the recommended settings (:mod:`..tune`).
+    Every argument is checked before the replay runs, so a mistake costs no waiting."""
+    from ..compare import compare_methods
+    from ..evaluate import evaluate, load_labels
+    from ..replay import replay
+    from ..tune import TuneError, format_tuning, parse_time, toml_fragment, tune
+
+    if quiet_until is not None and budget_per_day is None:
+        raise ReportError("--quiet-until goes with --budget")
+    out = prepare_directory(directory)
+    labels = load_labels(labels_path) if labels_path else None
+    try:
+        quiet = parse_time(quiet_until) if quiet_until is not None else None
+    except TuneError as exc:
+        raise ReportError(str(exc)) from None
+    collector = ReportCollector()
+    events: list[dict] = []
+    summary = replay(path, config, events_path=events_path, dead_letter_path=dead_letter_path,
+                     sinks=[events.append], observers=[collector], progress=progress)
+    inputs = ReportInputs(title=f"Incident review: {Path(path).name}", events=events,
+                          summary=f"{Path(path).name}: {summary.format()}", labels=labels)
+    if labels is not None:
+        inputs.evaluation = evaluate(events, labels, vectors=summary.vectors)
+        inputs.comparison = compare_methods(path, config, labels)
+    if budget_per_day is not None:
+        try:
+            result = tune(path, config, budget_per_day=budget_per_day, quiet_until=quiet, labels=labels)
+        except TuneError as exc:
+            raise ReportError(str(exc)) from None
+        inputs.tuning_text = format_tuning(result)
+        if result.recommended is not None:
+            inputs.tuning_toml = toml_fragment(result)
+        else:
+            inputs.missing.append(f"No setting tried keeps alerts within {budget_per_day:g} per day on the quiet "
+                                  "period: there is no configuration fragment to recommend.")
+    return summary, write_report(out, collector, inputs)

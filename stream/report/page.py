@@ -1,0 +1,226 @@
+"""The report's page, ``index.html``: self-contained (inline CSS, no scripts, no external assets),
+its PNG figures beside it.  Lays out, per entity shown, the figures (:mod:`.figures`) and the
+tables (:mod:`.tables`) of the summaries (:mod:`.summary`) of a :class:`.ReportCollector`."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from html import escape
+from pathlib import Path
+from typing import Any, Sequence
+
+import numpy as np
+
+from ..decode import _iso as rfc3339
+from ..demo import _duration as human_duration
+from ..evaluate import Evaluation, Labels
+from .collector import EntityTrace, ReportCollector
+from .directory import MARKER, prepare_directory
+from .figures import draw_heatmap, draw_traces, short_name
+from .summary import EntityView, IncidentSummary, choose_metrics, entity_view, incidents_from_events
+from .tables import comparison_html, evaluation_html, format_number, html_table, metric_table, window_table
+
+HEATMAP_METRICS = 12   # rows of the heatmap
+TRACE_METRICS = 6      # panels of a trace figure
+QUIET_ENTITIES = 3     # entities shown when nothing fired
+
+CSS = """
+body { font: 15px/1.45 system-ui, -apple-system, "Segoe UI", sans-serif; color: #1a1a1a; margin: 0; }
+main { max-width: 1140px; margin: 0 auto; padding: 1.5em 1.2em 4em; }
+h1 { font-size: 1.6em; margin-bottom: .2em; } h2 { margin-top: 2em; border-bottom: 1px solid #ccc; }
+h3 { margin-top: 1.6em; } .meta { color: #555; }
+.caution { background: #fff4e5; border-left: 4px solid #D55E00; padding: .6em 1em; }
+.quiet { background: #eef6f1; border-left: 4px solid #009E73; padding: .6em 1em; font-size: 1.1em; }
+.note { background: #f3f3f3; border-left: 4px solid #999; padding: .5em 1em; }
+table { border-collapse: collapse; margin: .6em 0 1em; font-variant-numeric: tabular-nums; }
+th, td { padding: .25em .7em; border-bottom: 1px solid #e2e2e2; text-align: left; vertical-align: top; }
+th { background: #f6f6f6; } td.num { text-align: right; white-space: nowrap; }
+.name { font-family: ui-monospace, Menlo, Consolas, monospace; word-break: break-all; }
+img { max-width: 100%; height: auto; display: block; margin: .4em 0; }
+figcaption { color: #555; font-size: .92em; margin-bottom: 1.2em; }
+pre { background: #f6f6f6; padding: .8em; overflow-x: auto; }
+"""
+
+
+@dataclass
+class ReportInputs:
+    """Everything the page shows besides the collector: the replay's events and the optional parts."""
+
+    title: str
+    events: list[dict]
+    summary: str = ""
+    labels: Labels | None = None
+    evaluation: Evaluation | None = None
+    comparison: Sequence[Any] | None = None   # stream.compare.MethodScore rows
+    tuning_text: str | None = None            # stream.tune.format_tuning
+    tuning_toml: str | None = None            # stream.tune.toml_fragment
+    missing: list[str] = field(default_factory=list)   # optional parts that could not be produced, and why
+
+
+def write_report(directory: str | Path, collector: ReportCollector, inputs: ReportInputs) -> Path:
+    """Write ``index.html`` and its PNG figures into ``directory`` (see :func:`prepare_directory`);
+    returns the page's path."""
+    out = prepare_directory(directory)
+    for old in out.glob("*.png"):   # a previous report's figures (prepare_directory checked they are ours)
+        old.unlink()
+    last_ts = {e: float(t.t_last[t.bins - 1]) if t.bins else -math.inf for e, t in collector.traces.items()}
+    incidents = incidents_from_events(inputs.events, last_ts)
+    labels = inputs.labels
+    by_entity: dict[str, list[IncidentSummary]] = {}
+    for inc in incidents:
+        by_entity.setdefault(inc.entity, []).append(inc)
+    labelled_by_entity: dict[str, list[str]] = {}
+    for lab in labels.incidents if labels else ():
+        labelled_by_entity.setdefault(lab.entity, []).extend(lab.metrics)
+    page = [f"<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">{MARKER}",
+            f"<title>{escape(inputs.title)}</title><style>{CSS}</style></head><body><main>",
+            f"<h1>{escape(inputs.title)}</h1>"]
+    if inputs.summary:
+        page.append(f'<p class="meta">{escape(inputs.summary)}</p>')
+    page.append('<p class="caution">Alerts inform the people on call; they do not replace their judgement. '
+                "Do not wire them to automatic remediation without a review like this one.</p>")
+    page.append("<h2>Incidents</h2>")
+    if incidents:
+        page.append(html_table(["incident", "entity", "onset (UTC)", "duration", "end state", "top metrics"],
+                               [[f'<a href="#{incident_anchor(i.incident)}">{escape(i.incident)}</a>',
+                                 escape(i.entity), rfc3339(i.start), human_duration(i.duration), escape(i.state),
+                                 escape(", ".join(m["name"] for m in i.metrics[:3]))] for i in incidents]))
+    else:
+        page.append('<p class="quiet"><b>Nothing fired.</b> No alert was raised on any entity during this '
+                    "replay. The figures below show the metrics that moved most, for context.</p>")
+    if inputs.evaluation is not None:
+        page += ["<h2>Against the labels</h2>", evaluation_html(inputs.evaluation)]
+    if inputs.comparison:
+        page += ["<h2>Method comparison</h2>", comparison_html(inputs.comparison)]
+    if inputs.tuning_text is not None or inputs.tuning_toml is not None:
+        page.append("<h2>Recommended settings</h2>")
+        if inputs.tuning_text:
+            page.append(f"<pre>{escape(inputs.tuning_text)}</pre>")
+        if inputs.tuning_toml:
+            page.append(f"<p>Put this into the configuration file:</p><pre>{escape(inputs.tuning_toml)}</pre>")
+    for note in inputs.missing:
+        page.append(f'<p class="note">{escape(note)}</p>')
+    shown = list(by_entity) or sorted(
+        collector.traces, key=lambda e: -float(np.nan_to_num(collector.traces[e].peak, nan=0.0).max(initial=0.0))
+    )[:QUIET_ENTITIES]
+    for number, entity in enumerate(shown):
+        page += _entity_section(out, number, entity, collector.traces[entity], by_entity.get(entity, []),
+                                labelled_by_entity.get(entity, []), labels)
+    page.append(_notes(collector))
+    page.append("</main></body></html>\n")
+    index = out / "index.html"
+    index.write_text("\n".join(page), encoding="utf-8")
+    return index
+
+
+def incident_anchor(text: str) -> str:
+    """The HTML id of an incident's section: its id with every character but letters and digits a dash."""
+    return "i-" + "".join(c if c.isalnum() else "-" for c in text)
+
+
+def _entity_section(out: Path, number: int, entity: str, trace: EntityTrace, incidents: list[IncidentSummary],
+                    labelled: list[str], labels: Labels | None) -> list[str]:
+    """One entity's section: its figures (unless its detail was dropped or it never left warm-up),
+    then one subsection per incident."""
+    part = [f"<h2>{escape(entity)}</h2>"]
+    if not incidents:
+        peak = float(np.nan_to_num(trace.peak).max(initial=0.0))
+        part.append(f"<p>No incident on this entity; peak |shift| {format_number(peak, '.1f')} "
+                    "residual \u03c3 over the replay.</p>")
+    if not trace.detail or trace.rows == 0:
+        why = (f"its detail was dropped at {rfc3339(trace.dropped_at)} to stay within the report's memory bound"
+               if not trace.detail else "no scored vectors (it was still warming up)")
+        part.append(f'<p class="note">No figures for this entity: {escape(why)}.</p>')
+    else:
+        metrics = choose_metrics(trace, incidents, labelled, HEATMAP_METRICS)
+        view = entity_view(trace, entity, metrics, incidents, labels)
+        heat = f"entity-{number:03d}-heatmap.png"
+        draw_heatmap(view, out / heat, trace.threshold,
+                     emphasise=(m["name"] for inc in incidents for m in inc.metrics))
+        marks = [w for w, present in (("bold: the incidents' metrics", bool(incidents)),
+                                      ("green: labelled metrics", bool(view.labelled))) if present]
+        part.append(f'<figure><img src="{heat}" alt="shift heatmap of {escape(entity)}"><figcaption>'
+                    "Signed shift of the top metrics in residual sigmas (red up, blue down; the colour scale is "
+                    f"linear up to \u00b1\u03bb = {trace.threshold:.2f} and logarithmic beyond; grey: not scored, i.e. "
+                    f"missing or a metric the baseline explains by itself{'; ' if marks else ''}"
+                    f"{'; '.join(marks)}). {_windows_caption(view)} Each column is {trace.width} scored "
+                    f"vector(s), showing the largest |shift| among them; a single vector far outside its band "
+                    f"does not alert by itself.</figcaption></figure>")
+        traces = f"entity-{number:03d}-traces.png"
+        top = metrics[:TRACE_METRICS]
+        draw_traces(view, out / traces, top)
+        part.append(f'<figure><img src="{traces}" alt="traces of {escape(entity)}"><figcaption>'
+                    f"{_band_caption(trace, view)}</figcaption></figure>")
+        for k, inc in enumerate(incidents):
+            names = _incident_metrics(inc, view)
+            context = max(inc.duration, 1800.0)
+            zoom = f"entity-{number:03d}-incident-{k:02d}.png"
+            draw_traces(view, out / zoom, names, span=(inc.start - context, inc.end + context / 2),
+                        title=f"incident {short_name(inc.incident, 60)}")
+            part += _incident_section(inc, set(labelled), zoom, _band_caption(trace, view))
+        return part
+    for inc in incidents:
+        part += _incident_section(inc, set(labelled), None, "")
+    return part
+
+
+def _incident_metrics(inc: IncidentSummary, view: EntityView) -> list[str]:
+    """What an incident's zoomed traces show: its metrics, then those of labelled faults it overlaps."""
+    names = dict.fromkeys(m["name"] for m in inc.metrics)
+    for w, lab in zip(view.labelled, view.labelled_metrics):
+        if w.start <= inc.end and inc.start <= w.end:
+            names.update(dict.fromkeys(lab))
+    return [n for n in names if n in view.metrics][:TRACE_METRICS] or view.metrics[:TRACE_METRICS]
+
+
+def _band_caption(trace: EntityTrace, view: EntityView) -> str:
+    observed = ("Observed (blue; its min\u2013max range where a step holds several vectors, here "
+                f"{trace.width})" if trace.width > 1 else "Observed (blue)")
+    k, m = trace.confirm
+    return (f"{observed}, the baseline's expected value (orange) and the detection band (grey): "
+            f"expected \u00b1 \u03bb = {trace.threshold:.2f} residual sigmas of the metric, mapped to its own "
+            f"units. Outside the band the detector considers a shift; it alerts after {k} of {m} such "
+            f"vectors. {_windows_caption(view)}")
+
+
+def _windows_caption(view: EntityView) -> str:
+    parts = (["shaded: alerted incidents"] if view.incidents else []) + \
+        (["hatched bar along the top (dashed edges in traces): labelled faults"] if view.labelled else []) + \
+        (["light blue: labelled traffic surges, where nothing should fire"] if view.surges else [])
+    text = "; ".join(parts)
+    return f"{text[:1].upper()}{text[1:]}." if parts else ""
+
+
+def _incident_section(inc: IncidentSummary, labelled: set[str], figure: str | None, caption: str) -> list[str]:
+    state = {"open": "still firing at the end of the replay", "resolved": "resolved",
+             "adapted": "accepted as the new normal (adapted)"}.get(inc.state, inc.state)
+    part = [f'<h3 id="{incident_anchor(inc.incident)}">Incident {escape(inc.incident)}</h3>',
+            f"<p>Onset <b>{rfc3339(inc.start)}</b>, duration <b>{human_duration(inc.duration)}</b>, "
+            f"{escape(state)}. Metrics ranked by their peak |shift| over the incident's events, with the "
+            "observed and expected values at that peak:</p>",
+            metric_table(inc, labelled)]
+    if figure:
+        part.append(f'<figure><img src="{figure}" alt="traces around incident {escape(inc.incident)}">'
+                    f"<figcaption>The incident's metrics (and those of a labelled fault it overlaps) around its "
+                    f"window. {caption}</figcaption></figure>")
+    if inc.window_metrics:
+        part.append(window_table(inc.window_metrics))
+    return part
+
+
+def _notes(collector: ReportCollector) -> str:
+    dropped = [e for e, t in collector.traces.items() if not t.detail]
+    text = ("<h2>How to read this</h2><p>Shifts are the detector's debiased estimates in residual sigmas "
+            "(how far a metric moved against the shared pattern of its entity). The expected value is the "
+            "low-rank baseline's prediction for that vector; the band is expected \u00b1 \u03bb d, with "
+            "\u03bb the detector's threshold (from <code>model.false_alarm</code>) and d the metric's "
+            "residual scale. Times are UTC (RFC 3339).</p>"
+            f"<p>Memory: figures keep at most {collector.max_bins:,} time steps per entity (longer replays "
+            f"merge neighbouring steps) and {collector.max_cells:,} values in all.")
+    if dropped:
+        more = " \u2026" if len(dropped) > 20 else ""
+        text += (f" The detail of {len(dropped)} entit{'y' if len(dropped) == 1 else 'ies'} with no incident "
+                 f"or smaller shifts was dropped to stay within that bound: "
+                 f"{escape(', '.join(sorted(dropped)[:20]))}{more}.")
+    return text + "</p>"
