@@ -263,7 +263,7 @@ class _KafkaWriter:
 
     def __init__(self, config: Config, brokers: str, topic: str) -> None:
         from .kafka import KafkaSettings, describe_error, import_kafka   # noqa: PLC0415  (kafka-python is heavy)
-        from .service import kafka_settings   # noqa: PLC0415
+        from .sources import kafka_settings   # noqa: PLC0415
         self.describe_error = describe_error
         try:   # the bootstrap list and topic, checked with the settings' own one-line messages
             hosts = KafkaSettings(bootstrap=brokers, topic=topic, group=_GROUP).bootstrap

@@ -60,7 +60,7 @@ import numpy as np
 import orjson
 
 from .decode import DEFAULT_LIMITS, DecodeError, DecodeLimits, Vector, _is_number, _kind, _labels, _show, layout_of
-from .readers import DEFAULT_RAW_CAP, InputError, Rejected
+from .lines import DEFAULT_RAW_CAP, InputError, Rejected
 from .samples import check_name, series_identity
 
 __all__ = ["DEFAULT_ENTITY_LABELS", "REASONS", "UNNAMED", "query_range_records"]

@@ -35,14 +35,17 @@ import gzip
 import os
 import stat
 import zlib
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from types import TracebackType
-from collections.abc import Iterator, Sequence
 from typing import IO, Any, BinaryIO, Callable
 
 import orjson
 
-from .decode import DEFAULT_LIMITS, DecodeError, DecodeLimits, Vector, check_size, decode_vector, vector_from_object
+from .decode import DEFAULT_LIMITS, DecodeError, DecodeLimits, Vector, decode_vector, vector_from_object
+from .lines import (CHUNK_BYTES, DEFAULT_RAW_CAP, InputError, Rejected, one_line, rejected, split_lines,
+                    strip_bom)
+from .promql import query_range_records
 
 __all__ = [
     "DEFAULT_RAW_CAP",
@@ -58,28 +61,12 @@ __all__ = [
 #: Reasons a line is rejected by the readers, in addition to decode.REASONS.
 REASONS = frozenset({"bad_encoding", "bad_csv_row", "truncated_input", "corrupt_input", "read_error"})
 
-DEFAULT_RAW_CAP = 64 * 1024  # bytes of a rejected line kept for dead letters
-_CHUNK = 64 * 1024
-_BOM = b"\xef\xbb\xbf"
 _SUFFIXES = {".jsonl": ("jsonl", False), ".jsonl.gz": ("jsonl", True),
              ".csv": ("csv", False), ".csv.gz": ("csv", True),
              ".json": ("promql", False), ".json.gz": ("promql", True)}
 DEFAULT_MAX_FILE_BYTES = 64 << 20  # config input.max_file_bytes: a whole-document input (.json)
-
-
-@dataclass(frozen=True, slots=True)
-class Rejected:
-    """A line that gave no vector: where, why, and its original bytes (capped; see `truncated`)."""
-
-    line: int
-    reason: str
-    detail: str
-    raw: bytes
-    truncated: bool = False  # raw holds only the first raw_cap bytes of the line
-
-
-class InputError(Exception):
-    """The input as a whole is unusable; str() is one line naming the file."""
+#: (line number, record, original line or None)
+Numbered = tuple[int, Vector | Rejected, bytes | None]
 
 
 def input_size(path: str | os.PathLike[str]) -> int | None:
@@ -92,12 +79,13 @@ def input_size(path: str | os.PathLike[str]) -> int | None:
 
 
 class RecordStream(Iterator[Vector | Rejected]):
-    """Iterator of an input's records in file order, with progress (`bytes_read`), `line` and `close()`."""
+    """Iterator of an input's records in file order, with progress (`bytes_read`), `line`, `raw` and `close()`."""
 
     def __init__(self, path: str, file: BinaryIO, stream: IO[bytes],
-                 records: Iterator[tuple[int, Vector | Rejected]]) -> None:
+                 records: Iterator[Numbered]) -> None:
         self.path = path
         self.line = 0              # line number of the record returned last
+        self.raw: bytes | None = None   # its original line (None: a record of a whole-document input)
         self._file = file          # the file on disk: its position is the progress
         self._stream = stream      # same object, or the gzip reader on top of it
         self._records = records
@@ -118,7 +106,7 @@ class RecordStream(Iterator[Vector | Rejected]):
 
     def __next__(self) -> Vector | Rejected:
         try:
-            self.line, record = next(self._records)
+            self.line, record, self.raw = next(self._records)
         except StopIteration:
             self.close()
             raise
@@ -158,16 +146,16 @@ def open_records(path: str | os.PathLike[str], limits: DecodeLimits = DEFAULT_LI
     stream: IO[bytes] = gzip.GzipFile(fileobj=file, mode="rb") if compressed else file
     try:
         try:
-            first = stream.read1(_CHUNK)  # fail early on a file that is not gzip or cannot be read
+            first = stream.read1(CHUNK_BYTES)  # fail early on a file that is not gzip or cannot be read
         except (OSError, EOFError, zlib.error) as exc:
             what = "not a readable gzip file" if compressed else "cannot read"
-            raise InputError(f"{name}: {what}: {_one_line(exc)}") from None
+            raise InputError(f"{name}: {what}: {one_line(exc)}") from None
         if kind == "promql":
-            from .promql import query_range_records  # noqa: PLC0415  (promql.py imports this module)
-            records = query_range_records(name, _whole(name, stream, first, max_file_bytes), limits,
-                                          entity_labels=entity_labels, raw_cap=raw_cap)
+            document = query_range_records(name, _whole(name, stream, first, max_file_bytes), limits,
+                                           entity_labels=entity_labels, raw_cap=raw_cap)
+            records = ((number, record, None) for number, record in document)
         else:
-            lines = _lines(stream, first, limits, raw_cap)
+            lines = split_lines(lambda: stream.read1(CHUNK_BYTES), first, limits, raw_cap)
             records = _csv_records(name, lines, limits, raw_cap) if kind == "csv" else \
                 _jsonl_records(lines, limits, raw_cap)
     except BaseException:
@@ -191,121 +179,30 @@ def _whole(name: str, stream: IO[bytes], first: bytes, max_file_bytes: int) -> b
     try:
         data = first + stream.read(max_file_bytes + 1 - len(first)) if len(first) <= max_file_bytes else first
     except (OSError, EOFError, zlib.error) as exc:
-        raise InputError(f"{name}: cannot read: {_one_line(exc)}") from None
+        raise InputError(f"{name}: cannot read: {one_line(exc)}") from None
     if len(data) > max_file_bytes:
         raise InputError(f"{name}: more than {max_file_bytes:,} bytes (input.max_file_bytes); a .json input "
                          f"is read whole: export a shorter window or raise the limit")
     return data
 
 
-def _lines(stream: IO[bytes], first: bytes, limits: DecodeLimits, raw_cap: int) -> Iterator[tuple[int, bytes] | Rejected]:
-    """Non-blank physical lines as (1-based number, bytes without CR/LF), in constant memory.
-
-    Over-long lines come out as Rejected("too_large"); a stream that breaks ends with one Rejected.
-    """
-    limit = limits.max_bytes + 1   # room for a CR before the LF
-    number = 0
-    pending = b""                  # start of the current line (only its head while skipping)
-    skipped = 0                    # > 0: length so far of an over-long line being skipped
-    blank = True                   # while skipping: no byte of the line so far is non-whitespace
-    chunk = first
-    while chunk:
-        start = 0
-        while (end := chunk.find(b"\n", start)) >= 0:
-            number += 1
-            if skipped:
-                # An over-long line of whitespace only is blank like any other (skipped silently,
-                # as LineSource in service.py does), so "non-blank lines == vectors + rejected" holds.
-                item = None if blank and _blank(chunk[start:end]) else \
-                    _too_large(number, skipped + end - start, pending, raw_cap, limits)
-            else:
-                item = _line(number, pending + chunk[start:end] if pending else chunk[start:end], limits, raw_cap)
-            if item is not None:
-                yield item
-            skipped, pending, blank = 0, b"", True
-            start = end + 1
-        if skipped:
-            skipped += len(chunk) - start
-            blank = blank and _blank(chunk[start:])
-        else:
-            pending += chunk[start:]
-            if len(pending) > limit:
-                skipped, blank, pending = len(pending), _blank(pending), pending[:raw_cap]
-        try:
-            chunk = stream.read1(_CHUNK)
-        except (OSError, EOFError, zlib.error) as exc:
-            yield _broken(number + 1, exc, pending, raw_cap)
-            return
-    if skipped:
-        item = None if blank else _too_large(number + 1, skipped, pending, raw_cap, limits)
-    else:
-        item = _line(number + 1, pending, limits, raw_cap)
-    if item is not None:
-        yield item
-
-
-def _blank(data: bytes) -> bool:
-    """Empty or ASCII whitespace only (bytes.isspace, the same test as for a short line)."""
-    return not data or data.isspace()
-
-
-def _line(number: int, line: bytes, limits: DecodeLimits, raw_cap: int) -> tuple[int, bytes] | Rejected | None:
-    """A complete line: None if blank (whatever its length), Rejected if over the size limit."""
-    line = line.removesuffix(b"\r")
-    if _blank(line):  # before the size check: a long run of whitespace is still a blank line
-        return None
-    if len(line) > limits.max_bytes:
-        return _too_large(number, len(line), line, raw_cap, limits)
-    return number, line
-
-
-def _too_large(number: int, size: int, head: bytes, raw_cap: int, limits: DecodeLimits) -> Rejected:
-    try:
-        check_size(size, limits)
-    except DecodeError as exc:
-        return _rejected(number, exc.reason, str(exc), head, raw_cap, truncated=len(head) < size)
-    raise AssertionError("_too_large called for a line within the limit")
-
-
-def _broken(number: int, exc: BaseException, partial: bytes, raw_cap: int) -> Rejected:
-    if isinstance(exc, EOFError):
-        reason, what = "truncated_input", "the compressed input ends early"
-    elif isinstance(exc, (zlib.error, gzip.BadGzipFile)):
-        reason, what = "corrupt_input", "the compressed input is corrupt"
-    else:
-        reason, what = "read_error", "reading the input failed"
-    return _rejected(number, reason, f"{what} at line {number} ({_one_line(exc)}); "
-                                     f"all lines before it were read", partial, raw_cap)
-
-
-def _rejected(number: int, reason: str, detail: str, raw: bytes, raw_cap: int, truncated: bool = False) -> Rejected:
-    if len(raw) > raw_cap:
-        raw, truncated = raw[:raw_cap], True
-    return Rejected(number, reason, detail, bytes(raw), truncated)
-
-
-def _payload(number: int, line: bytes) -> bytes:
-    """The line without a UTF-8 byte order mark at the start of the file."""
-    return line[len(_BOM):] if number == 1 and line.startswith(_BOM) else line
-
-
 def _decoded(lines: Iterator[tuple[int, bytes] | Rejected], parse: Callable[[int, bytes], Vector],
-             raw_cap: int) -> Iterator[tuple[int, Vector | Rejected]]:
+             raw_cap: int) -> Iterator[Numbered]:
     """Parse every line; a DecodeError becomes a Rejected record, reader rejections pass through."""
     for item in lines:
         if isinstance(item, Rejected):
-            yield item.line, item
+            yield item.line, item, item.raw
             continue
         number, line = item
         try:
-            yield number, parse(number, line)
+            yield number, parse(number, line), line
         except DecodeError as exc:
-            yield number, _rejected(number, exc.reason, str(exc), line, raw_cap)
+            yield number, rejected(number, exc.reason, str(exc), line, raw_cap), line
 
 
 def _jsonl_records(lines: Iterator[tuple[int, bytes] | Rejected], limits: DecodeLimits,
-                   raw_cap: int) -> Iterator[tuple[int, Vector | Rejected]]:
-    return _decoded(lines, lambda number, line: decode_vector(_payload(number, line), limits), raw_cap)
+                   raw_cap: int) -> Iterator[Numbered]:
+    return _decoded(lines, lambda number, line: decode_vector(strip_bom(number, line), limits), raw_cap)
 
 
 @dataclass(frozen=True, slots=True)
@@ -317,7 +214,7 @@ class _Header:
 
 
 def _csv_records(name: str, lines: Iterator[tuple[int, bytes] | Rejected], limits: DecodeLimits,
-                 raw_cap: int) -> Iterator[tuple[int, Vector | Rejected]]:
+                 raw_cap: int) -> Iterator[Numbered]:
     """Reads the header now (InputError if unusable) and returns the generator of the rows."""
     header = _csv_header(name, next(lines, None), limits)
     return _decoded(lines, lambda number, line: vector_from_object(_csv_object(line, header), limits), raw_cap)
@@ -330,7 +227,7 @@ def _csv_header(name: str, item: tuple[int, bytes] | Rejected | None, limits: De
         raise InputError(f"{name}: cannot read the CSV header: {item.detail}")
     number, line = item
     try:
-        columns = _csv_fields(_payload(number, line))
+        columns = _csv_fields(strip_bom(number, line))
     except DecodeError as exc:
         raise InputError(f"{name}: line {number}: bad CSV header: {exc}") from None
     positions: dict[str, int] = {}
@@ -397,15 +294,15 @@ class DeadLetterWriter:
         self.count = 0
         self._file = open(path, "wb")
 
-    def write(self, rejected: Rejected, source: str | os.PathLike[str] | None = None) -> None:
+    def write(self, record: Rejected, source: str | os.PathLike[str] | None = None) -> None:
         source = source if source is not None else self.source
         try:
-            raw, encoding = rejected.raw.decode("utf-8"), "utf-8"
+            raw, encoding = record.raw.decode("utf-8"), "utf-8"
         except UnicodeDecodeError:
-            raw, encoding = base64.b64encode(rejected.raw).decode("ascii"), "base64"
+            raw, encoding = base64.b64encode(record.raw).decode("ascii"), "base64"
         self._file.write(orjson.dumps({
-            "line": rejected.line, "reason": rejected.reason, "detail": rejected.detail, "raw": raw,
-            "raw_encoding": encoding, "truncated": rejected.truncated,
+            "line": record.line, "reason": record.reason, "detail": record.detail, "raw": raw,
+            "raw_encoding": encoding, "truncated": record.truncated,
             # an undecodable file name (surrogate-escaped by the OS layer) must not break the JSON
             "source": None if source is None else os.fsencode(source).decode("utf-8", "backslashreplace"),
         }, option=orjson.OPT_APPEND_NEWLINE))
@@ -420,7 +317,3 @@ class DeadLetterWriter:
     def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,
                  tb: TracebackType | None) -> None:
         self.close()
-
-
-def _one_line(exc: BaseException) -> str:
-    return " ".join(str(exc).split()) or type(exc).__name__

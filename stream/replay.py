@@ -1,6 +1,7 @@
 """Replay: run a recorded file through the full detector, deterministically.
 
 ``shiftsieve replay INPUT --events OUT.jsonl [--config FILE] [--dead-letter FILE]``
+runs the records of one file through the pipeline every command uses (:mod:`.pipeline`); it
 reads ``.jsonl``, ``.jsonl.gz``, wide ``.csv`` (``.csv.gz``) or a Prometheus range-query
 export (``.json``, ``.json.gz``, see :mod:`.promql`); undecodable lines are skipped,
 counted and optionally written to the dead-letter file; the replay goes on.
@@ -16,10 +17,11 @@ from pathlib import Path
 from typing import TextIO
 
 from .config import Config
-from .decode import DecodeLimits, encode_vector
 from .engine import BatchObserver, Engine, EventSink
 from .events import EventFileWriter
-from .readers import DeadLetterWriter, InputError, RecordStream, Rejected, input_size, open_records
+from .lines import InputError, Rejected
+from .pipeline import Pipeline, decode_limits
+from .readers import DeadLetterWriter, RecordStream, input_size, open_records
 
 
 @dataclass
@@ -83,11 +85,6 @@ class Progress:
             self.stream.flush()
 
 
-def decode_limits(config: Config) -> DecodeLimits:
-    return DecodeLimits(max_bytes=config.input.max_message_bytes,
-                        max_metrics=config.input.max_metrics_per_message)
-
-
 def open_input(path: str | Path, config: Config) -> RecordStream:
     """The records of a replay input under the configured limits and entity labels (the one way
     replay, evaluate and tune read their input)."""
@@ -98,46 +95,41 @@ def open_input(path: str | Path, config: Config) -> RecordStream:
 def replay(path: str | Path, config: Config, *, events_path: str | None = None,
            dead_letter_path: str | None = None, sinks: list[EventSink] | None = None,
            progress: bool = True, observers: list[BatchObserver] | None = None) -> ReplaySummary:
-    """Replay one file; raises :class:`InputError` when the input as a whole is unusable.
+    """Replay one file through the pipeline (:mod:`.pipeline`); raises :class:`InputError` when the
+    input as a whole is unusable.
 
     ``observers`` see every scored batch (:data:`.engine.BatchObserver`), e.g. the report's collector.
     """
     path = Path(path)
     started = time.perf_counter()
-    rejected_by_reason: dict[str, int] = {}
     with ExitStack() as stack:
         records = open_input(path, config)
-        dead = stack.enter_context(DeadLetterWriter(dead_letter_path)) if dead_letter_path else None
+        reject_sinks = []
+        if dead_letter_path:
+            dead = stack.enter_context(DeadLetterWriter(dead_letter_path, source=str(path)))
+            reject_sinks.append(lambda record, partition: dead.write(record))
         all_sinks = list(sinks or [])
         if events_path:
             all_sinks.append(stack.enter_context(EventFileWriter(events_path)))
-
-        def reject(line: int, raw: bytes, reason: str, detail: str) -> None:
-            rejected_by_reason[reason] = rejected_by_reason.get(reason, 0) + 1
-            if dead is not None:
-                dead.write(Rejected(line=line, reason=reason, detail=detail, raw=raw), source=str(path))
-
         engine = Engine.from_config(config, sinks=all_sinks, observers=observers or ())
+        pipeline = Pipeline(engine, config, reject_sinks=reject_sinks)
         bar = Progress(input_size(path) if progress else None)
         count = 0
         for record in records:
             if isinstance(record, Rejected):
-                reject(record.line, record.raw, record.reason, record.detail)
+                pipeline.reject(record)
                 continue
             count += 1
-            refused = engine.feed(record)
-            if refused is not None:
-                reject(getattr(records, "line", 0), encode_vector(record), refused,
-                       f"vector of {record.entity!r} at ts {record.ts} refused: {refused}")
+            pipeline.feed((record,), records.line, raw=records.raw)
             if count % 4096 == 0:
-                bar.update(getattr(records, "bytes_read", 0), count)
+                bar.update(records.bytes_read, count)
         engine.flush()
         bar.close()
     accepted = engine.counts.processed
     if accepted == 0:
-        raise InputError(f"{path}: no valid vector in the input ({sum(rejected_by_reason.values())} lines rejected)")
-    return ReplaySummary(vectors=accepted, rejected=sum(rejected_by_reason.values()),
-                         rejected_by_reason=rejected_by_reason, entities=len(engine.entities),
+        raise InputError(f"{path}: no valid vector in the input ({pipeline.rejected} lines rejected)")
+    return ReplaySummary(vectors=accepted, rejected=pipeline.rejected,
+                         rejected_by_reason=dict(pipeline.rejected_by_reason), entities=len(engine.entities),
                          incidents=engine.counts.incidents, events=engine.counts.events,
                          solver_unconverged=engine.counts.solver_unconverged, rewarmed=engine.rewarmed,
                          seconds=time.perf_counter() - started)

@@ -299,7 +299,7 @@ LINE_KINDS = {
        crlf=st.booleans(), final_newline=st.booleans(), chunk=st.sampled_from([1, 7, 64, 64 * 1024]))
 def test_property_conservation_and_line_numbers(tmp_path: Path, monkeypatch: pytest.MonkeyPatch, kinds: list[str],
                                                 gz: bool, crlf: bool, final_newline: bool, chunk: int) -> None:
-    monkeypatch.setattr(readers, "_CHUNK", chunk)  # lines split across reads, even inside a CRLF
+    monkeypatch.setattr(readers, "CHUNK_BYTES", chunk)  # lines split across reads, even inside a CRLF
     end = b"\r\n" if crlf else b"\n"
     lines = [LINE_KINDS[k](i) for i, k in enumerate(kinds)]
     data = end.join(lines) + (end if final_newline and lines else b"")

@@ -29,7 +29,7 @@ from shiftsieve.stream.cli import main
 from shiftsieve.stream.config import ENV_PREFIX, SCHEMA, ConfigError, load_config
 from shiftsieve.stream.endpoints import DEFAULT_LISTEN, Endpoints
 from shiftsieve.stream.kafka import KafkaSettings, KafkaSource
-from shiftsieve.stream.service import kafka_settings
+from shiftsieve.stream.sources import kafka_settings
 
 ROOT = Path(__file__).resolve().parent.parent
 PACKAGES = ("stream", "models", "replay_data")

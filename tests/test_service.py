@@ -279,7 +279,7 @@ def test_commits_never_pass_a_held_offset(monkeypatch):
     (the oldest message whose samples still wait in an open step), and moves on once it rises."""
     import shiftsieve.stream.kafka as kafka_module
     from shiftsieve.stream.kafka import Record
-    from shiftsieve.stream.service import KafkaInput
+    from shiftsieve.stream.sources import KafkaInput
 
     class FakeSource:
         def __init__(self, settings, **callbacks):

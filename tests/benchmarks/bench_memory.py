@@ -10,8 +10,8 @@ configured cap; RSS is reported)."
 
 What runs: the real ``Service`` (stream/service.py) with its real ``Engine``, exporter and
 state directory, driven in-process without a source: decoded ``Vector`` objects are handed to
-``Service._feed`` one "poll" (P = 2,000 vectors) at a time, each poll followed by
-``Service._flush`` -- which runs the engine, refreshes the exporter and evicts beyond
+``Service.pipeline.feed`` one "poll" (P = 2,000 vectors) at a time, each poll followed by
+``Service.flush`` -- which runs the engine, refreshes the exporter and evicts beyond
 ``engine.max_resident``, exactly as the poll loop does.  Decoding and Kafka are not measured
 (bench_service.py does that).  Values come from one fixed-seed rank-3-plus-noise model of 20
 metrics shared by all entities; ``model.warmup`` is 20 and every entity sends V = 25 vectors
@@ -142,7 +142,6 @@ class NoSource:
 # -- one configuration (child process) -------------------------------------------------------------
 def child(params: dict) -> dict:
     from shiftsieve.stream.config import load_config
-    from shiftsieve.stream.engine import Engine
     from shiftsieve.stream.service import Service
 
     E, V, cap, spill = params["entities"], params["vectors"], params["cap"], params["spill"]
@@ -154,7 +153,7 @@ def child(params: dict) -> dict:
         environ["SHIFTSIEVE_STATE_DIRECTORY"] = json.dumps(state_dir)   # a TOML string
     config = load_config(None, environ)
     service = Service(config, source_url="-", listen="127.0.0.1:0")
-    service.engine = engine = Engine.from_config(config, sinks=[service._emitted.append])
+    engine = service.engine
     service.source = NoSource()
     io = {"saves": 0, "save_s": 0.0, "loads": 0, "restored": 0, "load_s": 0.0}
     if service.state is not None:
@@ -194,8 +193,8 @@ def child(params: dict) -> dict:
         t = time.perf_counter()
         vectors = work.chunk(done, count)
         t1, c1 = time.perf_counter(), time.process_time()
-        service._feed(vectors, done, "")
-        service._flush()
+        service.pipeline.feed(vectors, done)
+        service.flush()
         t2, c2 = time.perf_counter(), time.process_time()
         gen_s, svc_s, svc_cpu = gen_s + (t1 - t), svc_s + (t2 - t1), svc_cpu + (c2 - c1)
         del vectors
@@ -298,7 +297,7 @@ def report(args: argparse.Namespace, results: list[dict], total_s: float) -> Non
               f"{r['rss_base']:>7.0f}{r['rss_peak']:>7.0f}{r['rss_end']:>7.0f}"
               f"{r['snap_files']:>8,}{r['snap_bytes'] / 2**20:>9.1f}")
     print("  RSS in MiB: base = VmRSS before the first vector, peak = ru_maxrss, end = VmRSS after the run;")
-    print("  svc s, svc CPU = wall and CPU seconds in Service._feed + _flush (vector generation excluded);")
+    print("  svc s, svc CPU = wall and CPU seconds in Service.pipeline.feed + flush (vector generation excluded);")
     print("  vec/s and vec/CPUs = vectors per svc s and per svc CPU second (with shared cores, trust the latter);")
     print("  scoring = resident entities past their warm-up")
     for r in results:

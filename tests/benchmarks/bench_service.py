@@ -127,13 +127,13 @@ def paced_producer(params: dict) -> int:
 
 # -- the service under test --------------------------------------------------------------------
 class Recorder:
-    """Wraps the service's ``_take`` (one call per poll with records) and ``exporter.refresh`` (one
+    """Wraps the service's ``take`` (one call per poll with records) and ``exporter.refresh`` (one
     per flush, when the gauges include what was taken): a record's latency ends at the refresh
     after the poll that carried it."""
 
     def __init__(self, service) -> None:
         self.service = service
-        self._take = service._take
+        self._take = service.take
         self._refresh = service.exporter.refresh
         self.calls: list[tuple[float, int, int]] = []   # (perf_counter after refresh, processed, records)
         self.latency = False
@@ -235,7 +235,7 @@ def run(args: argparse.Namespace, port: int) -> dict:
                       listen="127.0.0.1:0")
     rec = Recorder(service)
     service.exporter.refresh = rec.refresh
-    service._take = rec.take
+    service.take = rec.take
     failure: list[BaseException] = []
 
     def target() -> None:
