@@ -35,10 +35,11 @@ from scipy.special import chdtri, erf, ndtri
 
 from .decision import FIRING, QUIET, AlertTracker, DecisionConfig, Transition
 from .dictionary import build_dictionary, column_scales, metric_effect
-from .lasso import gross_start, projected_residual, refit_solution, solve_projected_lasso
+from .lasso import gross_start, projected_residual, solve_projected_lasso
 from .mmv import MMVResult, group_lasso_mmv, msbl
 from .normaliser import (MAD_TO_SIGMA, RobustNormaliser, column_median, decay_for_halflife, from_metric_units,
                          to_metric_units)
+from .refit import refit_solution
 from .subspace import DEFAULT_ENERGY, DEFAULT_HALFLIFE, DEFAULT_MAX_RANK, SubspaceTracker
 from .tail import fitted_tail_factors, tracked_tail_factors
 

@@ -37,12 +37,13 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
-from numbers import Integral, Real
+from numbers import Integral
 
 import numpy as np
 from scipy import linalg
 
-from shiftsieve.models.lasso import _as_float_array, _check_settings
+from .shrinkage import block_soft_threshold
+from .validation import as_float_array, check_positive, check_solver_settings
 
 __all__ = ["MMVResult", "group_lasso_mmv", "msbl", "rank_rows"]
 
@@ -74,8 +75,8 @@ class MMVResult:
 
 def _check_system(A, Y, check_input: bool) -> tuple[np.ndarray, np.ndarray]:
     """``A`` (n, m) and ``Y`` (n, L) as float arrays; shapes always, finiteness if ``check_input``."""
-    A = _as_float_array(A, "A", (2,))
-    Y = _as_float_array(Y, "Y", (2,))
+    A = as_float_array(A, "A", (2,))
+    Y = as_float_array(Y, "Y", (2,))
     n, m = A.shape
     if n == 0 or m == 0:
         raise ValueError(f"A must have at least one row and one column, got shape {A.shape}")
@@ -87,15 +88,6 @@ def _check_system(A, Y, check_input: bool) -> tuple[np.ndarray, np.ndarray]:
         if not np.all(np.isfinite(Y)):
             raise ValueError("Y contains NaN or infinite values")
     return A, Y
-
-
-def _check_positive(value, name: str, *, allow_zero: bool = False) -> None:
-    """Raise ValueError unless ``value`` is a finite real number > 0 (>= 0 with ``allow_zero``)."""
-    ok = (not isinstance(value, bool) and isinstance(value, Real) and np.isfinite(value)
-          and (value >= 0 if allow_zero else value > 0))
-    if not ok:
-        kind = "non-negative" if allow_zero else "positive"
-        raise ValueError(f"{name} must be a {kind} finite number, got {value!r}")
 
 
 def _result(coef: np.ndarray, n_iter: int, converged: bool, **extra) -> MMVResult:
@@ -113,14 +105,6 @@ def _spectral_norm_sq(A: np.ndarray) -> float:
     G = A.T @ A if A.shape[1] <= A.shape[0] else A @ A.T
     k = G.shape[0]
     return float(linalg.eigvalsh(G, subset_by_index=[k - 1, k - 1])[0])
-
-
-def _block_soft_threshold(G: np.ndarray, thr: float) -> np.ndarray:
-    """Prox of ``thr * sum_i ||X_i,:||``: each row shrunk towards 0 by ``thr`` in l2 norm."""
-    norms = np.linalg.norm(G, axis=1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        factor = np.where(norms > thr, 1.0 - thr / norms, 0.0)
-    return G * factor[:, None]
 
 
 def _duality_gap(X: np.ndarray, R: np.ndarray, C: np.ndarray, Y: np.ndarray, lam: float) -> float:
@@ -167,8 +151,8 @@ def group_lasso_mmv(
     """
     A, Y = _check_system(A, Y, check_input)
     if check_input:
-        _check_positive(lam, "lam", allow_zero=True)
-    _check_settings(tol, max_iter, lipschitz)
+        check_positive(lam, "lam", allow_zero=True)
+    check_solver_settings(tol, max_iter, lipschitz)
     m, L = A.shape[1], Y.shape[1]
     lam = float(lam)
     thresh = tol * float(np.vdot(Y, Y))
@@ -179,7 +163,7 @@ def group_lasso_mmv(
     if coef_init is None:
         X, R, C = np.zeros((m, L)), Y, C0
     else:
-        X = _as_float_array(coef_init, "coef_init", (2,)).copy()
+        X = as_float_array(coef_init, "coef_init", (2,)).copy()
         if X.shape != (m, L):
             raise ValueError(f"coef_init must have shape {(m, L)}, got {X.shape}")
         if check_input and not np.all(np.isfinite(X)):
@@ -200,7 +184,7 @@ def group_lasso_mmv(
         t_next = 0.5 * (1.0 + np.sqrt(1.0 + 4.0 * t * t))
         beta = (t - 1.0) / t_next
         V = X + beta * (X - Xp)
-        Xn = _block_soft_threshold(V + step * (C + beta * (C - Cp)), thr)
+        Xn = block_soft_threshold(V + step * (C + beta * (C - Cp)), thr)
         # Gradient adaptive restart (O'Donoghue & Candes 2015): drop the momentum
         # when the step opposes the extrapolation.
         t = 1.0 if np.vdot(V - Xn, Xn - X) > 0 else t_next
@@ -280,10 +264,10 @@ def msbl(
     array([2.4e+01, 5.0e-03, 5.0e-03])
     """
     A, Y = _check_system(A, Y, check_input)
-    _check_settings(tol, max_iter, None)
+    check_solver_settings(tol, max_iter, None)
     if noise_var is not None:
-        _check_positive(noise_var, "noise_var")
-    _check_positive(prune, "prune", allow_zero=True)
+        check_positive(noise_var, "noise_var")
+    check_positive(prune, "prune", allow_zero=True)
     if update not in ("em", "fixed_point"):
         raise ValueError(f"update must be 'em' or 'fixed_point', got {update!r}")
     n, m = A.shape
@@ -307,7 +291,7 @@ def msbl(
             keep[index] = True
             gamma[~keep] = 0.0
     else:
-        gamma = _as_float_array(gamma_init, "gamma_init", (1,)).copy()
+        gamma = as_float_array(gamma_init, "gamma_init", (1,)).copy()
         if gamma.shape != (m,):
             raise ValueError(f"gamma_init must have shape ({m},), got {gamma.shape}")
         if check_input and not (np.all(np.isfinite(gamma)) and np.all(gamma >= 0) and gamma.any()):
@@ -383,7 +367,7 @@ def rank_rows(
         raise ValueError(f"names has {len(names)} entries for {norms.shape[0]} rows")
     if k is not None and (isinstance(k, bool) or not isinstance(k, Integral) or k < 0):
         raise ValueError(f"k must be a non-negative integer or None, got {k!r}")
-    _check_positive(rel_tol, "rel_tol", allow_zero=True)
+    check_positive(rel_tol, "rel_tol", allow_zero=True)
     top = float(norms.max(initial=0.0))
     rows = np.flatnonzero(norms > rel_tol * top) if top > 0 else np.zeros(0, dtype=np.int64)
     ranked = sorted(((names[i], float(norms[i])) for i in rows), key=lambda item: (-item[1], item[0]))

@@ -35,8 +35,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import linalg
 
-from shiftsieve.models.lasso import _as_float_array, _check_settings, _soft_threshold
-from shiftsieve.models.mmv import _check_positive
+from .shrinkage import soft_threshold
+from .validation import as_float_array, check_positive, check_solver_settings
 
 __all__ = ["PCPResult", "principal_component_pursuit"]
 
@@ -83,17 +83,17 @@ def principal_component_pursuit(
            [0., 0., 0., 0.],
            [0., 0., 0., 0.]]), True)
     """
-    M = _as_float_array(M, "M", (2,))
+    M = as_float_array(M, "M", (2,))
     if M.size == 0:
         raise ValueError(f"M must have at least one row and one column, got shape {M.shape}")
     if not np.all(np.isfinite(M)):
         raise ValueError("M contains NaN or infinite values")
-    _check_settings(tol, max_iter, None)
+    check_solver_settings(tol, max_iter, None)
     if lam is None:
         lam = 1.0 / np.sqrt(max(M.shape))
-    _check_positive(lam, "lam")
+    check_positive(lam, "lam")
     if mu is not None:
-        _check_positive(mu, "mu")
+        check_positive(mu, "mu")
 
     norm_fro = float(np.linalg.norm(M))
     if norm_fro == 0.0:
@@ -113,7 +113,7 @@ def principal_component_pursuit(
         L = (U[:, :r] * (s[:r] - 1.0 / mu)) @ Vt[:r]
         # S-step: entrywise soft thresholding of M - L + Y / mu at lam / mu.
         t = lam / mu
-        S = _soft_threshold(M - L + Y / mu, -t, t)
+        S = soft_threshold(M - L + Y / mu, -t, t)
         Z = M - L - S
         Y += mu * Z
         mu = min(mu * _MU_GROWTH, mu_max)

@@ -19,13 +19,8 @@ from hypothesis import strategies as st
 from sklearn.linear_model import Lasso
 
 import shiftsieve.models.lasso as lasso_mod
-from shiftsieve.models.lasso import (
-    LassoResult,
-    debias,
-    lasso_objective,
-    projected_residual,
-    solve_projected_lasso,
-)
+from shiftsieve.models.lasso import LassoResult, lasso_objective, projected_residual, solve_projected_lasso
+from shiftsieve.models.refit import debias, refit_solution
 
 TIGHT = 1e-10  # our tol for reference comparisons
 
@@ -496,7 +491,6 @@ def test_refit_solution_equals_debias_and_projected_residual():
     """The detector's fast refit (reusing the solver's residual and coordinates) against the
     plain path: debias() (itself checked against numpy.linalg.lstsq above) and the
     coordinates that projected_residual() gives at the refitted coefficients."""
-    from shiftsieve.models.lasso import refit_solution
     rng = np.random.default_rng(17)
     n, r, B = 40, 3, 12
     U = np.linalg.qr(rng.standard_normal((n, r)))[0]
