@@ -37,14 +37,16 @@ from __future__ import annotations
 
 import json
 import math
-import numbers
 import re
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import datetime
 from typing import Any, Mapping
 
 import numpy as np
 import orjson
+
+from .timefmt import rfc3339
+from .values import is_number, is_utf8, kind_of, show
 
 __all__ = [
     "DEFAULT_LIMITS",
@@ -53,9 +55,12 @@ __all__ = [
     "DecodeError",
     "DecodeLimits",
     "Vector",
+    "check_labels",
     "check_size",
+    "check_timestamp",
     "decode_vector",
     "encode_vector",
+    "load_json",
     "parse_timestamp",
     "vector_from_object",
 ]
@@ -247,23 +252,24 @@ def _parse_lenient(raw: bytes | bytearray | memoryview | str, strict_error: json
 def vector_from_object(obj: Any, limits: DecodeLimits = DEFAULT_LIMITS) -> Vector:
     """Validate a parsed message (a mapping, from JSON or a CSV row) into a Vector; DecodeError only."""
     if type(obj) is not dict and not isinstance(obj, Mapping):   # the ABC check is slow: dicts first
-        raise DecodeError("not_object", f"message must be a JSON object, not {_kind(obj)}")
-    ts = _timestamp(obj.get("ts"), limits)
+        raise DecodeError("not_object", f"message must be a JSON object, not {kind_of(obj)}")
+    ts = check_timestamp(obj.get("ts"), limits)
     entity = _entity(obj.get("entity"), limits)
     metrics, invalid, layout, values = _metrics(obj.get("metrics"), limits)
-    labels = _labels(obj.get("labels"))
+    labels = check_labels(obj.get("labels"))
     return Vector(ts, entity, metrics, labels, invalid, layout, values)
 
 
-def _timestamp(value: Any, limits: DecodeLimits) -> float:
+def check_timestamp(value: Any, limits: DecodeLimits) -> float:
+    """A message's ``ts`` as epoch seconds inside the accepted window; DecodeError otherwise."""
     if value is None:
         raise DecodeError("no_ts", "'ts' is missing")
     ts = parse_timestamp(value)
     if not limits.min_ts <= ts <= limits.max_ts:
         hint = " (it looks like milliseconds; send seconds)" if limits.min_ts <= ts / 1000 <= limits.max_ts else ""
         raise DecodeError("ts_out_of_range",
-                          f"'ts' {ts!r} is outside the accepted window {_iso(limits.min_ts)} .. "
-                          f"{_iso(limits.max_ts)}{hint}")
+                          f"'ts' {ts!r} is outside the accepted window {rfc3339(limits.min_ts)} .. "
+                          f"{rfc3339(limits.max_ts)}{hint}")
     return ts
 
 
@@ -281,33 +287,33 @@ def parse_timestamp(value: Any) -> float:
     """
     if isinstance(value, str):
         return _parse_rfc3339(value)
-    if _is_number(value):
+    if is_number(value):
         try:
             ts = float(value)
         except OverflowError:
             ts = math.inf
         if math.isfinite(ts):
             return ts
-        raise DecodeError("bad_ts", f"'ts' must be a finite number, got {_show(value)}")
-    raise DecodeError("bad_ts", f"'ts' must be epoch seconds or an RFC 3339 string, not {_kind(value)}")
+        raise DecodeError("bad_ts", f"'ts' must be a finite number, got {show(value)}")
+    raise DecodeError("bad_ts", f"'ts' must be epoch seconds or an RFC 3339 string, not {kind_of(value)}")
 
 
 def _parse_rfc3339(text: str) -> float:
     match = _RFC3339.fullmatch(text)
     if match is None:
-        raise DecodeError("bad_ts", f"'ts' {_show(text)} is not an RFC 3339 timestamp "
+        raise DecodeError("bad_ts", f"'ts' {show(text)} is not an RFC 3339 timestamp "
                                     f"like 2026-05-28T12:00:00Z")
     year, month, day, hour, minute, second, fraction, zulu, sign, off_h, off_m = match.groups()
     if zulu is None and sign is None:
-        raise DecodeError("naive_ts", f"'ts' {_show(text)} has no timezone; add 'Z' or an offset like +02:00")
+        raise DecodeError("naive_ts", f"'ts' {show(text)} has no timezone; add 'Z' or an offset like +02:00")
     try:
         date = datetime(int(year), int(month), int(day), int(hour), int(minute), min(int(second), 59))
     except ValueError as exc:
-        raise DecodeError("bad_ts", f"'ts' {_show(text)} is not a valid date and time: {exc}") from None
+        raise DecodeError("bad_ts", f"'ts' {show(text)} is not a valid date and time: {exc}") from None
     offset = 0
     if sign is not None:
         if int(off_h) > 23 or int(off_m) > 59:
-            raise DecodeError("bad_ts", f"'ts' {_show(text)} has an invalid UTC offset")
+            raise DecodeError("bad_ts", f"'ts' {show(text)} has an invalid UTC offset")
         offset = (int(off_h) * 3600 + int(off_m) * 60) * (1 if sign == "+" else -1)
     seconds = ((date.toordinal() - _EPOCH_ORDINAL) * 86400 + date.hour * 3600 + date.minute * 60
                + int(second) - offset)
@@ -322,13 +328,13 @@ def _entity(value: Any, limits: DecodeLimits) -> str:
     if value is None:
         raise DecodeError("no_entity", "'entity' is missing")
     if not isinstance(value, str):
-        raise DecodeError("bad_entity", f"'entity' must be a string, not {_kind(value)}")
+        raise DecodeError("bad_entity", f"'entity' must be a string, not {kind_of(value)}")
     if len(value) > limits.max_entity_length:
         raise DecodeError("bad_entity", f"'entity' is {len(value)} characters, over the limit of "
                                         f"{limits.max_entity_length} (max_entity_length)")
     if not value or value.isspace():
         raise DecodeError("no_entity", "'entity' is empty or only whitespace")
-    if not _is_utf8(value):
+    if not is_utf8(value):
         raise DecodeError("bad_entity", "'entity' contains unpaired surrogates (not valid UTF-8)")
     return value
 
@@ -341,7 +347,7 @@ def _metrics(value: Any, limits: DecodeLimits) -> _Metrics:
     if not value and (value is None or isinstance(value, Mapping)):
         raise DecodeError("no_metrics", "'metrics' is missing or empty")
     if type(value) is not dict and not isinstance(value, Mapping):
-        raise DecodeError("bad_metrics", f"'metrics' must be an object of name -> number, not {_kind(value)}")
+        raise DecodeError("bad_metrics", f"'metrics' must be an object of name -> number, not {kind_of(value)}")
     if len(value) > limits.max_metrics:
         raise DecodeError("too_many_metrics", f"'metrics' has {len(value):,} entries, over the limit of "
                                               f"{limits.max_metrics:,} (max_metrics)")
@@ -389,7 +395,7 @@ def _metrics_checked(value: Mapping, limits: DecodeLimits) -> _Metrics:
     out: dict[str, float | None] = {}
     invalid: list[tuple[str, str]] = []
     for name, item in value.items():
-        if type(name) is not str or not 0 < len(name) <= max_name or not (name.isascii() or _is_utf8(name)):
+        if type(name) is not str or not 0 < len(name) <= max_name or not (name.isascii() or is_utf8(name)):
             invalid.append((_clip_name(name, max_name), "bad_name"))
             continue
         out[name] = None
@@ -397,7 +403,7 @@ def _metrics_checked(value: Mapping, limits: DecodeLimits) -> _Metrics:
             x = item
         elif item is None:
             continue
-        elif not _is_number(item):
+        elif not is_number(item):
             invalid.append((name, "not_a_number"))
             continue
         else:
@@ -416,59 +422,23 @@ def _metrics_checked(value: Mapping, limits: DecodeLimits) -> _Metrics:
     return out, tuple(invalid), None, None   # the Vector derives its layout and values
 
 
-def _labels(value: Any) -> dict[str, str]:
+def check_labels(value: Any) -> dict[str, str]:
+    """A message's ``labels`` (absent, or an object of non-empty string -> string); DecodeError otherwise."""
     if value is None:
         return {}
     if not isinstance(value, Mapping):
-        raise DecodeError("bad_labels", f"'labels' must be an object of string -> string, not {_kind(value)}")
+        raise DecodeError("bad_labels", f"'labels' must be an object of string -> string, not {kind_of(value)}")
     for key, item in value.items():
-        if not isinstance(key, str) or not key or not _is_utf8(key):
-            raise DecodeError("bad_labels", f"label name {_show(key)} must be a non-empty string")
+        if not isinstance(key, str) or not key or not is_utf8(key):
+            raise DecodeError("bad_labels", f"label name {show(key)} must be a non-empty string")
         if not isinstance(item, str):
-            raise DecodeError("bad_labels", f"label {key!r} must have a string value, not {_kind(item)}")
-        if not _is_utf8(item):
+            raise DecodeError("bad_labels", f"label {key!r} must have a string value, not {kind_of(item)}")
+        if not is_utf8(item):
             raise DecodeError("bad_labels", f"label {key!r} has unpaired surrogates (not valid UTF-8)")
     return dict(value)
-
-
-def _is_number(value: Any) -> bool:
-    """Real numbers (also numpy's) but not booleans, which JSON and Python both treat as ints."""
-    kind = type(value)
-    return kind is float or kind is int or (isinstance(value, numbers.Real) and not isinstance(value, bool))
-
-
-def _is_utf8(text: str) -> bool:
-    """False for strings with unpaired surrogates (possible from the stdlib parser or Python callers)."""
-    if text.isascii():
-        return True
-    try:
-        text.encode("utf-8")
-    except UnicodeEncodeError:
-        return False
-    return True
 
 
 def _clip_name(name: Any, limit: int) -> str:
     text = name if isinstance(name, str) else repr(name)
     text = text.encode("utf-8", "backslashreplace").decode("utf-8")
     return text if len(text) <= limit else text[:limit] + "..."
-
-
-_KINDS = {dict: "an object", list: "an array", str: "a string", bool: "a boolean", type(None): "null",
-          int: "a number", float: "a number"}
-
-
-def _kind(value: Any) -> str:
-    return _KINDS.get(type(value)) or type(value).__name__
-
-
-def _show(value: Any, limit: int = 60) -> str:
-    text = repr(value)
-    return text if len(text) <= limit else text[:limit] + "..."
-
-
-def _iso(ts: float) -> str:
-    try:
-        return datetime.fromtimestamp(ts, timezone.utc).isoformat().replace("+00:00", "Z")
-    except (OverflowError, ValueError, OSError):  # configured bounds beyond datetime's range
-        return repr(ts)

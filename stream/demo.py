@@ -12,6 +12,7 @@ from .config import Config
 from .evaluate import evaluate, format_table, load_labels
 from .readers import InputError
 from .replay import replay
+from .timefmt import human_duration
 
 LABELS_SUFFIX = ".labels.json"
 MAX_ROWS = 8   # metrics shown per event; the events file has them all
@@ -46,12 +47,6 @@ def _when(ts: float) -> str:
     return dt.datetime.fromtimestamp(ts, dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%SZ")
 
 
-def _duration(seconds: float) -> str:
-    minutes, sec = divmod(int(round(seconds)), 60)
-    hours, minutes = divmod(minutes, 60)
-    return f"{hours} h {minutes:02d} min" if hours else f"{minutes} min {sec:02d} s"
-
-
 def _number(x: float | None) -> str:
     return "-" if x is None else f"{x:,.4g}"
 
@@ -63,9 +58,9 @@ def format_event(event: dict) -> str:
     if event["state"] == "firing":
         head += "  (new incident)" if event.get("onset") else "  (joins incident)"
     elif event["state"] == "resolved":
-        head += f"  after {_duration(event['duration_seconds'])}; peak shifts:"
+        head += f"  after {human_duration(event['duration_seconds'])}; peak shifts:"
     else:
-        head += f"  after {_duration(event['duration_seconds'])}: accepted as the new normal"
+        head += f"  after {human_duration(event['duration_seconds'])}: accepted as the new normal"
     width = max(28, *(len(m["name"]) for m in event["metrics"][:MAX_ROWS]))
     rows = [f"    {'metric':{width}s} {'shift':>9s} {'observed':>12s} {'expected':>12s}"]
     for m in event["metrics"][:MAX_ROWS]:

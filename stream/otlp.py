@@ -47,8 +47,9 @@ from typing import Any
 
 import orjson
 
-from .decode import DEFAULT_LIMITS, DecodeError, DecodeLimits, _is_utf8, _kind
-from .samples import Sample, check_name, check_value, load_json
+from .decode import DEFAULT_LIMITS, DecodeError, DecodeLimits, load_json
+from .samples import Sample, check_name, check_value
+from .values import is_utf8, kind_of
 
 __all__ = ["OTLP_REASONS", "decode_otlp", "encode_otlp"]
 
@@ -72,7 +73,7 @@ def decode_otlp(raw: bytes | bytearray | memoryview | str, limits: DecodeLimits 
     """The gauge and sum samples of one OTLP/JSON metrics request, and how many points were skipped."""
     obj = load_json(raw, limits)
     if not isinstance(obj, Mapping):
-        raise DecodeError("not_object", f"message must be a JSON object, not {_kind(obj)}")
+        raise DecodeError("not_object", f"message must be a JSON object, not {kind_of(obj)}")
     if obj.get("resourceMetrics") is None:
         raise DecodeError("not_otlp", "no 'resourceMetrics': not an OTLP metrics export request")
     samples: list[Sample] = []
@@ -152,7 +153,7 @@ def _sample(point: Mapping, name: str, labels: dict[str, str], limits: DecodeLim
     """The point as a Sample, or None when its time or value is unusable."""
     flags = point.get("flags")
     if flags is not None and (type(flags) is not int or flags < 0):
-        raise DecodeError("bad_otlp", f"{path}.flags must be a non-negative integer, not {_kind(flags)}")
+        raise DecodeError("bad_otlp", f"{path}.flags must be a non-negative integer, not {kind_of(flags)}")
     has_double, has_int = point.get("asDouble") is not None, point.get("asInt") is not None
     if has_double and has_int:
         raise DecodeError("bad_otlp", f"{path} has both asDouble and asInt")
@@ -206,7 +207,7 @@ def _attributes(value: Any, path: str) -> dict[str, str]:
     if value is None:
         return {}
     if not isinstance(value, list):
-        raise DecodeError("bad_attributes", f"{path}.attributes must be a list, not {_kind(value)}")
+        raise DecodeError("bad_attributes", f"{path}.attributes must be a list, not {kind_of(value)}")
     out = {}
     for item in value:
         # fast path, the common case: an ASCII key with an ASCII stringValue
@@ -224,9 +225,9 @@ def _attributes(value: Any, path: str) -> dict[str, str]:
 
 def _key_value(item: Any, path: str, depth: int = 0) -> tuple[str, Any]:
     if not isinstance(item, Mapping):
-        raise DecodeError("bad_attributes", f"{path} entries must be {{key, value}} objects, not {_kind(item)}")
+        raise DecodeError("bad_attributes", f"{path} entries must be {{key, value}} objects, not {kind_of(item)}")
     key = item.get("key")
-    if not isinstance(key, str) or not key or not _is_utf8(key):
+    if not isinstance(key, str) or not key or not is_utf8(key):
         raise DecodeError("bad_attributes", f"{path} has an entry without a usable key")
     return key, _plain(item.get("value"), f"{path}[{key!r}]", depth)
 
@@ -236,7 +237,7 @@ def _plain(value: Any, path: str, depth: int) -> Any:
     if value is None:
         return None
     if not isinstance(value, Mapping):
-        raise DecodeError("bad_attributes", f"{path} value must be an AnyValue object, not {_kind(value)}")
+        raise DecodeError("bad_attributes", f"{path} value must be an AnyValue object, not {kind_of(value)}")
     kinds = [kind for kind in _ANY_KINDS if value.get(kind) is not None]
     if len(kinds) > 1:
         raise DecodeError("bad_attributes", f"{path} value has more than one field: {', '.join(kinds)}")
@@ -256,7 +257,7 @@ def _plain(value: Any, path: str, depth: int) -> Any:
         else:
             result = dict(_key_value(x, path, depth + 1) for x in items)
     if result is None:
-        raise DecodeError("bad_attributes", f"{path} has a malformed {kind}: {_kind(item)}")
+        raise DecodeError("bad_attributes", f"{path} has a malformed {kind}: {kind_of(item)}")
     return result
 
 
@@ -271,8 +272,8 @@ def _double_value(value: Any) -> float | None:
 
 
 _SCALARS = {
-    "stringValue": lambda x: x if isinstance(x, str) and _is_utf8(x) else None,
-    "bytesValue": lambda x: x if isinstance(x, str) and _is_utf8(x) else None,  # base64 text
+    "stringValue": lambda x: x if isinstance(x, str) and is_utf8(x) else None,
+    "bytesValue": lambda x: x if isinstance(x, str) and is_utf8(x) else None,  # base64 text
     "boolValue": lambda x: x if isinstance(x, bool) else None,
     "intValue": _int64,
     "doubleValue": _double_value,
@@ -303,7 +304,7 @@ def _list(obj: Mapping, key: str, path: str) -> list:
     if value is None:
         return []
     if not isinstance(value, list):
-        raise DecodeError("bad_otlp", f"{path + '.' if path else ''}{key} must be a list, not {_kind(value)}")
+        raise DecodeError("bad_otlp", f"{path + '.' if path else ''}{key} must be a list, not {kind_of(value)}")
     return value
 
 
@@ -311,5 +312,5 @@ def _object(value: Any, path: str) -> Mapping:
     if value is None:
         return {}
     if not isinstance(value, Mapping):
-        raise DecodeError("bad_otlp", f"{path} must be an object, not {_kind(value)}")
+        raise DecodeError("bad_otlp", f"{path} must be an object, not {kind_of(value)}")
     return value

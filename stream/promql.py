@@ -59,9 +59,10 @@ from typing import Any
 import numpy as np
 import orjson
 
-from .decode import DEFAULT_LIMITS, DecodeError, DecodeLimits, Vector, _is_number, _kind, _labels, _show, layout_of
+from .decode import DEFAULT_LIMITS, DecodeError, DecodeLimits, Vector, check_labels, layout_of
 from .lines import DEFAULT_RAW_CAP, InputError, Rejected
 from .samples import check_name, series_identity
+from .values import is_number, kind_of, show
 
 __all__ = ["DEFAULT_ENTITY_LABELS", "REASONS", "UNNAMED", "query_range_records"]
 
@@ -143,24 +144,24 @@ def _matrix(name: str, data: bytes) -> list:
                              f"query_range response{_VECTORS_HINT}") from None
     if not isinstance(doc, dict) or "status" not in doc:
         raise InputError(f"{name}: not a Prometheus query_range response (expected an object with "
-                         f"\"status\" and \"data\", got {_kind(doc)}){_VECTORS_HINT}")
+                         f"\"status\" and \"data\", got {kind_of(doc)}){_VECTORS_HINT}")
     if doc["status"] == "error":
         message = " ".join(str(doc.get("error", "")).split())
         message = message if len(message) <= _MAX_MESSAGE else message[:_MAX_MESSAGE] + "..."
         raise InputError(f"{name}: the Prometheus API returned an error: {doc.get('errorType', 'unknown')}: "
                          f"{message or 'no message'}")
     if doc["status"] != "success":
-        raise InputError(f"{name}: response status is {_show(doc['status'])}, expected \"success\"")
+        raise InputError(f"{name}: response status is {show(doc['status'])}, expected \"success\"")
     body = doc.get("data")
     if not isinstance(body, dict):
-        raise InputError(f"{name}: response \"data\" must be an object, not {_kind(body)}")
+        raise InputError(f"{name}: response \"data\" must be an object, not {kind_of(body)}")
     kind = body.get("resultType")
     if kind != "matrix":
-        raise InputError(f"{name}: resultType is {_show(kind)}, expected \"matrix\" (export with "
+        raise InputError(f"{name}: resultType is {show(kind)}, expected \"matrix\" (export with "
                          f"/api/v1/query_range, not /api/v1/query)")
     result = body.get("result")
     if not isinstance(result, list):
-        raise InputError(f"{name}: response \"data.result\" must be an array, not {_kind(result)}")
+        raise InputError(f"{name}: response \"data.result\" must be an array, not {kind_of(result)}")
     if not result:
         raise InputError(f"{name}: the range query returned no series (data.result is empty)")
     return result
@@ -170,11 +171,11 @@ def _series(line: int, item: Any, keys: tuple[str, ...], limits: DecodeLimits, r
             raw_cap: int) -> _Series:
     """One series of the result; its bad points go to `rejected`; DecodeError if the series is unusable."""
     if not isinstance(item, dict):
-        raise DecodeError("bad_series", f"must be an object with \"metric\" and \"values\", not {_kind(item)}")
+        raise DecodeError("bad_series", f"must be an object with \"metric\" and \"values\", not {kind_of(item)}")
     values = item.get("values")
     if not isinstance(values, list):
-        raise DecodeError("bad_series", f"\"values\" must be an array of [ts, \"value\"] pairs, not {_kind(values)}")
-    labels = _labels(item.get("metric"))
+        raise DecodeError("bad_series", f"\"values\" must be an array of [ts, \"value\"] pairs, not {kind_of(values)}")
+    labels = check_labels(item.get("metric"))
     base = check_name(labels.pop("__name__", None) or UNNAMED, limits)
     entity, metric = series_identity(base, labels, keys, limits)
     ts, x, codes, bad = _points(values, limits)
@@ -236,13 +237,13 @@ def _slow_points(values: list) -> _Parsed:
     positions, stamps, xs, codes, bad = [], [], [], [], []
     for position, point in enumerate(values):
         if not isinstance(point, list) or len(point) != 2:
-            bad.append((position, "bad_point", f"must be a [ts, \"value\"] pair, not {_show(point)}"))
+            bad.append((position, "bad_point", f"must be a [ts, \"value\"] pair, not {show(point)}"))
             continue
         ts, value = point
-        if not _is_number(ts) or not math.isfinite(stamp := _float(ts)):
-            bad.append((position, "bad_ts", f"ts must be a number of seconds, not {_show(ts)}"))
+        if not is_number(ts) or not math.isfinite(stamp := _float(ts)):
+            bad.append((position, "bad_ts", f"ts must be a number of seconds, not {show(ts)}"))
             continue
-        number = _float(value) if isinstance(value, str) or _is_number(value) else math.nan
+        number = _float(value) if isinstance(value, str) or is_number(value) else math.nan
         positions.append(position)
         stamps.append(stamp)
         xs.append(number)

@@ -68,8 +68,9 @@ from typing import Any
 
 import orjson
 
-from .decode import (DEFAULT_LIMITS, DecodeError, DecodeLimits, Vector, _is_number, _is_utf8, _kind, _labels,
-                     _show, _timestamp, load_json)
+from .decode import (DEFAULT_LIMITS, DecodeError, DecodeLimits, Vector, check_labels, check_timestamp,
+                     load_json)
+from .values import is_number, is_utf8, kind_of, show
 
 __all__ = [
     "REJECT_REASONS",
@@ -80,7 +81,6 @@ __all__ = [
     "check_value",
     "decode_sample",
     "encode_sample",
-    "load_json",
     "series_name",
 ]
 
@@ -113,10 +113,10 @@ def decode_sample(raw: bytes | bytearray | memoryview | str, limits: DecodeLimit
     """Parse and validate one sample message; raises DecodeError only."""
     obj = load_json(raw, limits)
     if not isinstance(obj, Mapping):
-        raise DecodeError("not_object", f"message must be a JSON object, not {_kind(obj)}")
-    ts = _timestamp(obj.get("ts"), limits)
+        raise DecodeError("not_object", f"message must be a JSON object, not {kind_of(obj)}")
+    ts = check_timestamp(obj.get("ts"), limits)
     name = check_name(obj.get("name"), limits)
-    labels = _labels(obj.get("labels"))
+    labels = check_labels(obj.get("labels"))
     if "value" not in obj:
         raise DecodeError("no_value", "'value' is missing (send null for a missing value)")
     return Sample(ts, name, labels, check_value(obj["value"], limits))
@@ -132,14 +132,14 @@ def check_name(value: Any, limits: DecodeLimits = DEFAULT_LIMITS) -> str:
     if value is None or value == "":
         raise DecodeError("no_name", "'name' is missing or empty")
     if not isinstance(value, str):
-        raise DecodeError("bad_name", f"'name' must be a string, not {_kind(value)}")
+        raise DecodeError("bad_name", f"'name' must be a string, not {kind_of(value)}")
     if len(value) > limits.max_name_length:
         raise DecodeError("bad_name", f"'name' is {len(value)} characters, over the limit of "
                                       f"{limits.max_name_length} (max_name_length)")
-    if not _is_utf8(value):
+    if not is_utf8(value):
         raise DecodeError("bad_name", "'name' contains unpaired surrogates (not valid UTF-8)")
     if "{" in value or "}" in value:
-        raise DecodeError("bad_name", f"'name' {_show(value)} contains braces; put series labels in 'labels'")
+        raise DecodeError("bad_name", f"'name' {show(value)} contains braces; put series labels in 'labels'")
     return value
 
 
@@ -147,8 +147,8 @@ def check_value(value: Any, limits: DecodeLimits = DEFAULT_LIMITS) -> float | No
     """A sample value as the vector decoder judges a metric entry: finite, bounded float or None."""
     if value is None:
         return None
-    if not _is_number(value):
-        raise DecodeError("not_a_number", f"'value' must be a number or null, not {_kind(value)}")
+    if not is_number(value):
+        raise DecodeError("not_a_number", f"'value' must be a number or null, not {kind_of(value)}")
     try:
         x = float(value)
     except OverflowError:  # an integer beyond double range

@@ -12,8 +12,8 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from ..decode import _iso as rfc3339
-from ..demo import _duration as human_duration
+from ..timefmt import rfc3339
+from ..timefmt import human_duration
 from ..evaluate import Evaluation, Labels
 from .collector import EntityTrace, ReportCollector
 from .directory import MARKER, prepare_directory

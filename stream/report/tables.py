@@ -9,7 +9,7 @@ from typing import Any, Iterable, Sequence
 
 import numpy as np
 
-from ..decode import _iso as rfc3339
+from ..timefmt import rfc3339
 from ..evaluate import Evaluation
 from .summary import IncidentSummary
 
