@@ -355,3 +355,64 @@ def test_the_installed_command_exits_2_with_one_line(tmp_path):
                           capture_output=True, text=True, env=env, timeout=60)
     assert done.returncode == 2 and done.stdout == ""
     assert done.stderr == "shiftsieve: error: model.energy (%s): expected a number in (0, 1], got 1.5\n" % path
+
+
+# -- one declaration: the schema is the section dataclasses; the library's defaults are the CLI's ----------
+from dataclasses import fields  # noqa: E402
+
+from shiftsieve.models.decision import DecisionConfig  # noqa: E402
+from shiftsieve.models.detector import DetectorConfig  # noqa: E402
+from shiftsieve.models.normaliser import decay_for_halflife  # noqa: E402
+from shiftsieve.models.subspace import SubspaceTracker  # noqa: E402
+from shiftsieve.stream.assemble import MetricRules  # noqa: E402
+from shiftsieve.stream.config import SECTIONS  # noqa: E402
+
+
+def test_the_schema_is_derived_from_the_section_dataclasses():
+    assert [(s.section, s.key) for s in SCHEMA] == [(name, f.name) for name, section in SECTIONS.items()
+                                                    for f in fields(section)]
+    assert len({s.env for s in SCHEMA}) == len(SCHEMA)
+    cfg = load_config(environ={})
+    for s in SCHEMA:
+        assert isinstance(getattr(cfg, s.section), SECTIONS[s.section])
+        assert cfg.get(s.section, s.key) == s.default == getattr(SECTIONS[s.section](), s.key), s.key
+    cfg.model.log_metrics.append("mutated_*")   # a loaded value is the caller's, not the schema's default
+    assert "mutated_*" not in load_config(environ={}).model.log_metrics
+
+
+def test_every_model_setting_is_a_config_key_with_the_library_default():
+    assert {f.name for f in fields(DetectorConfig)} - {"decision"} <= {f.name for f in fields(SECTIONS["model"])}
+    assert [f.name for f in fields(DecisionConfig)] == [f.name for f in fields(SECTIONS["decision"])]
+    assert load_config(environ={}).detector_config() == DetectorConfig()
+    assert DecisionConfig().adapt_after == 1440   # the CLI's default since it had one (the library's was 0)
+    tracker, model = SubspaceTracker(), DetectorConfig()
+    assert (tracker.energy, tracker.max_rank, tracker.decay) == \
+        (model.energy, model.max_rank, decay_for_halflife(model.baseline_halflife))
+
+
+def test_config_builds_the_metric_rules_decode_limits_and_kafka_settings(tmp_path):
+    secret = tmp_path / "password"
+    secret.write_text("s3cret\n")
+    path = tmp_path / "c.toml"
+    path.write_text('[model]\nlog_metrics = ["lat_*"]\ngroup_by = ["dep"]\n[model.groups]\ndb = ["db_*"]\n'
+                    "[engine]\nmax_metrics = 50\ndrop_after = 7\n"
+                    "[input]\nmax_message_bytes = 4096\nmax_metrics_per_message = 99\n"
+                    '[kafka]\napi_version = "2.5.0"\nsecurity_protocol = "SASL_SSL"\nsasl_mechanism = "PLAIN"\n'
+                    f'sasl_username = "u"\nsasl_password_file = "{secret}"\nfetch_partition_bytes = 65536\n')
+    cfg = load_config(path, environ={})
+    assert cfg.metric_rules() == MetricRules(log_patterns=("lat_*",), groups=(("db", ("db_*",)),), group_by=("dep",),
+                                             max_metrics=50, drop_after=7)
+    limits = cfg.decode_limits()
+    assert (limits.max_bytes, limits.max_metrics) == (4096, 99)
+    kafka = cfg.kafka_settings("kafka://h1:9092,h2:9093/metrics?group=g")
+    assert kafka.bootstrap == ("h1:9092", "h2:9093") and (kafka.topic, kafka.group) == ("metrics", "g")
+    assert kafka.api_version == (2, 5, 0) and (kafka.sasl_mechanism, kafka.sasl_username) == ("PLAIN", "u")
+    assert kafka.sasl_password == "s3cret" and kafka.max_message_bytes == 4096 and kafka.fetch_partition_bytes == 65536
+    default = load_config(environ={}).kafka_settings("kafka://h:9092/t?group=g")
+    assert default.api_version is None and default.sasl_mechanism is None and default.sasl_password is None
+
+
+def test_the_secret_is_not_in_the_repr_of_a_config():
+    cfg = load_config(environ={"SHIFTSIEVE_KAFKA_SASL_PASSWORD": "hunter2-not-for-logs"})
+    assert cfg.kafka.sasl_password == "hunter2-not-for-logs"
+    assert "hunter2" not in repr(cfg) and "hunter2" not in repr(cfg.kafka)
