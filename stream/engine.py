@@ -2,9 +2,11 @@
 detector and turns its transitions into alert events for the sinks.
 
 ``source -> decode -> [engine: assemble -> model -> decide] -> sinks``.  The
-engine is the same for replay and for the live service; only the batching
-differs (replay fills batches of ``batch_size`` vectors per entity, the service
-flushes after every poll).
+engine is the same for every command (:mod:`.pipeline` feeds it): an entity's batch runs
+when it holds ``batch_size`` vectors, and :meth:`Engine.flush` runs the partial ones (replay
+at the end of its input; the service when its source is caught up, and at most every
+``engine.max_delay_seconds`` while it is behind).  Per-entity state is one record each in
+:attr:`Engine.registry` (:mod:`.registry`).
 
 Joint localisation: per entity with an open incident the engine keeps the incident's window
 of residual rows (:class:`IncidentWindows`) and every event of the incident carries
@@ -14,18 +16,19 @@ of residual rows (:class:`IncidentWindows`) and every event of the incident carr
 
 from __future__ import annotations
 
-import itertools
 from dataclasses import dataclass
 from typing import Callable, Iterable
 
 import numpy as np
 
-from shiftsieve.models.detector import BatchResult, DetectorConfig
+from shiftsieve.models.batch_result import BatchResult
+from shiftsieve.models.detector import DetectorConfig
 
 from .assemble import EntityStream, MetricRules
 from .config import Config
 from .decode import Vector
 from .events import events_from_transitions, window_metrics
+from .registry import EntityRecord, EntityRegistry, IncidentWindow
 
 EventSink = Callable[[dict], None]
 #: Called after each successfully scored batch with (stream, ts, X, result), result's columns
@@ -49,72 +52,45 @@ class EngineCounts:
     localisation_failed: int = 0   # incident windows whose joint localisation failed (events go out without it)
 
 
-class _Window:
-    """One open incident's residual rows (at most ``max_rows``, the first ones), with the metric
-    names their columns stand for."""
-
-    def __init__(self, names: list[str], max_rows: int) -> None:
-        self.names = list(names)
-        self.max_rows = max_rows
-        self.blocks: list[np.ndarray] = []
-        self.rows = 0
-
-    def add(self, Y: np.ndarray, names: list[str]) -> None:
-        if names != self.names:   # metrics came or went during the incident: columns follow names
-            where = {name: j for j, name in enumerate(self.names)}
-            old = np.array([where.get(name, -1) for name in names], dtype=np.int64)
-            self.blocks = [np.where(old >= 0, b[:, old], 0.0) for b in self.blocks]   # new metrics: 0
-            self.names = list(names)
-        room = self.max_rows - self.rows
-        if room > 0 and Y.shape[0]:
-            self.blocks.append(Y[:room].copy())
-            self.rows += min(room, Y.shape[0])
-
-    def matrix(self) -> np.ndarray:
-        return np.vstack(self.blocks)
-
-
 class IncidentWindows:
     """The windows of joint localisation: per entity with an open incident, its residual rows
     (:meth:`BatchResult.window_residuals`) from ``lead`` samples before the onset (the first
     samples of a confirmed shift lie up to ``confirm_m - 1`` samples before it fires) up to
     ``max_rows`` rows; every event of the incident gets the ``top`` columns of both rankings.
 
-    Memory is bounded: ``max_rows`` rows per open incident, and the last ``lead`` raw rows only
-    for entities with a pending column (an onset can only begin where something is active).
-    Windows are transient (not snapshotted): an incident restored from a snapshot starts a new
-    window at its next batch.  They go when the incident closes, or the entity is dropped,
-    adopted or warmed up again.
+    The rows live on the entity's record (``window``, and ``tail``: the last ``lead`` raw rows,
+    kept only for entities with a pending column, since an onset can only begin where something
+    is active), so memory is bounded by ``max_rows`` rows per open incident.  Windows are
+    transient (not snapshotted): an incident restored from a snapshot starts a new window at its
+    next batch.  They go when the incident closes, or the entity is dropped, adopted or warmed
+    up again.
     """
 
     def __init__(self, max_rows: int = 120, top: int = 10, lead: int = 4) -> None:
         if max_rows < 1 or top < 1 or lead < 0:
             raise ValueError(f"need max_rows >= 1, top >= 1, lead >= 0; got {max_rows}, {top}, {lead}")
         self.max_rows, self.top, self.lead = max_rows, top, lead
-        self._open: dict[str, _Window] = {}
-        self._tails: dict[str, np.ndarray] = {}   # raw rows before the batch, pending entities only
 
-    def __len__(self) -> int:
-        return len(self._open)
+    @staticmethod
+    def forget(record: EntityRecord) -> None:
+        record.window = None
+        record.tail = None
 
-    def forget(self, entity: str) -> None:
-        self._open.pop(entity, None)
-        self._tails.pop(entity, None)
-
-    def localise(self, stream: EntityStream, X: np.ndarray, result: BatchResult) -> list[dict | None] | None:
+    def localise(self, record: EntityRecord, X: np.ndarray, result: BatchResult) -> list[dict | None] | None:
         """``window_metrics`` for each of the batch's transitions (None: nothing to add to any)."""
-        entity, detector = stream.entity, stream.detector
-        window = self._open.pop(entity, None)
-        tail = self._tails.pop(entity, None)
+        stream = record.stream
+        detector = stream.detector
+        window, tail = record.window, record.tail
+        record.window = record.tail = None
         if self.lead and detector.tracker.state.any():
-            self._tails[entity] = self._next_tail(tail, X)
+            record.tail = self._next_tail(tail, X)
         if window is None and detector.tracker.incident is None and not result.transitions:
             return None   # the common case: no incident, nothing to do
         Y = result.window_residuals(X)
         names, start, fields = stream.names, 0, []
         for t in result.transitions:
             if t.onset or window is None:   # a new incident (or one restored without its window)
-                window = _Window(names, self.max_rows)
+                window = IncidentWindow(list(names), self.max_rows)
                 start = max(t.row - self.lead, 0) if t.onset else 0
                 before = self.lead - t.row
                 if t.onset and before > 0 and tail is not None and tail.shape[1] == X.shape[1]:
@@ -125,9 +101,9 @@ class IncidentWindows:
             if t.kind == "resolved":
                 window = None
         if detector.tracker.incident is not None:
-            window = window or _Window(names, self.max_rows)
+            window = window or IncidentWindow(list(names), self.max_rows)
             window.add(Y[start:], names)
-            self._open[entity] = window
+            record.window = window
         return fields
 
     def _next_tail(self, tail: np.ndarray | None, X: np.ndarray) -> np.ndarray:
@@ -137,7 +113,8 @@ class IncidentWindows:
 
 
 class Engine:
-    """Many entities, one process; each entity gets its own detector."""
+    """Many entities, one process; each entity gets its own detector and one record
+    (:class:`.registry.EntityRecord`) in :attr:`registry`."""
 
     def __init__(self, detector_config: DetectorConfig, rules: MetricRules, *, batch_size: int = 64,
                  max_entities: int = 100_000, sinks: Iterable[EventSink] = (),
@@ -151,13 +128,10 @@ class Engine:
         # Joint localisation over incident windows (window_rows = 0: off).
         self.windows = IncidentWindows(window_rows, lead=detector_config.decision.confirm_m - 1) \
             if window_rows else None
-        self.entities: dict[str, EntityStream] = {}
-        self._pending: dict[str, list[Vector]] = {}
+        self.registry = EntityRegistry()
+        self.entities = self.registry.streams   # entity -> EntityStream, read-only
         self.counts = EngineCounts()
-        self.touched: set[str] = set()   # entities that processed vectors since the caller last cleared it
-        self.touched_since_snapshot: set[str] = set()
         self.rewarmed: list[tuple[str, str]] = []   # (entity, why) since the caller last cleared it
-        self._recent: dict[str, None] = {}   # entities, least recently fed first
         self.queued = 0   # vectors fed and not yet run
 
     @classmethod
@@ -176,78 +150,59 @@ class Engine:
         ``out_of_order``) so the caller can dead-letter it.
         """
         self.counts.vectors += 1
-        stream = self.entities.get(vector.entity)
-        if stream is None:
-            if len(self.entities) >= self.max_entities:
+        record = self.registry.get(vector.entity)
+        if record is None:
+            if len(self.registry) >= self.max_entities:
                 self.counts.rejected_entity_limit += 1
                 return "entity_limit"
-            stream = self.entities[vector.entity] = EntityStream(vector.entity, self.rules, self.detector_config)
-            self._pending[vector.entity] = []
-        pending = self._pending[vector.entity]
+            record = self.registry.add(EntityStream(vector.entity, self.rules, self.detector_config))
+        pending = record.pending
         if not pending:   # once per batch, not per vector: batches are how recency is counted
-            self._recent.pop(vector.entity, None)
-            self._recent[vector.entity] = None
-        last = pending[-1].ts if pending else stream.last_ts
+            self.registry.touch(record)
+        last = pending[-1].ts if pending else record.stream.last_ts
         if vector.ts <= last:   # duplicates and late samples would corrupt the baseline
             self.counts.rejected_out_of_order += 1
             return "out_of_order"
         pending.append(vector)
         self.queued += 1
         if len(pending) >= self.batch_size:
-            self._run(stream)
+            self._run(record)
         return None
 
-    def adopt(self, stream: EntityStream) -> None:
-        """Take over an entity restored from a snapshot."""
-        self.entities[stream.entity] = stream
-        self._pending[stream.entity] = []
-        self._recent[stream.entity] = None
-        if self.windows is not None:
-            self.windows.forget(stream.entity)
+    def adopt(self, stream: EntityStream, covered: dict[str, int] | None = None) -> EntityRecord:
+        """Take over an entity restored from a snapshot that includes the ``covered`` offsets."""
+        return self.registry.add(stream, covered)
 
     def drop(self, entity: str) -> None:
-        """Forget an entity (its partition moved to another process); pending vectors must be flushed first."""
-        if self._pending.get(entity):
-            raise RuntimeError(f"entity {entity!r} still has unprocessed vectors: flush before dropping it")
-        self.entities.pop(entity, None)
-        self._pending.pop(entity, None)
-        self._recent.pop(entity, None)
-        self.touched.discard(entity)
-        self.touched_since_snapshot.discard(entity)
-        if self.windows is not None:
-            self.windows.forget(entity)
-
-    def least_recent(self, keep: int) -> list[str]:
-        """The entities beyond the ``keep`` most recently fed, least recent first: what to evict
-        to hold at most ``keep`` models in memory."""
-        return list(itertools.islice(self._recent, max(len(self.entities) - keep, 0)))
+        """Forget an entity everywhere (its partition moved to another process, or it is evicted);
+        its pending vectors must be flushed first."""
+        self.registry.remove(entity)
 
     def flush(self) -> None:
         """Run every partial batch (end of input; in the service every engine.max_delay_seconds)."""
-        for entity, pending in self._pending.items():
-            if pending:
-                self._run(self.entities[entity])
+        for record in list(self.registry.records()):
+            if record.pending:
+                self._run(record)
 
-    def _run(self, stream: EntityStream) -> None:
-        vectors = self._pending[stream.entity]
-        self._pending[stream.entity] = []
+    def _run(self, record: EntityRecord) -> None:
+        stream = record.stream
+        vectors, record.pending = record.pending, []
         self.queued -= len(vectors)
         X, ts = stream.assemble(vectors)
-        self.touched.add(stream.entity)
-        self.touched_since_snapshot.add(stream.entity)
+        self.registry.mark_ran(record)
         self.counts.processed += len(vectors)
         try:
             result = stream.detector.process(X, ts)
         except np.linalg.LinAlgError as exc:   # e.g. an SVD that did not converge on degenerate data
-            self._rewarm(stream, f"linear algebra failed ({exc})")
+            self._rewarm(record, f"linear algebra failed ({exc})")
             return
         if not (stream.detector.is_finite() and np.isfinite(result.shift_sigma).all()):
-            self._rewarm(stream, "non-finite model values")   # the batch's transitions are not trusted
+            self._rewarm(record, "non-finite model values")   # the batch's transitions are not trusted
             return
         # Everything that names columns runs before observe(), which may drop stale metrics' columns.
         for observer in self.observers:
             observer(stream, ts, X, result)
-        located = self._localise(stream, X, result) if self.windows is not None else None
+        located = self._localise(record, X, result) if self.windows is not None else None
         stream.last_residual_norm = float(result.residual_norm[-1])
         self.counts.solver_iterations += int(result.n_iter.sum())
         self.counts.solver_unconverged += int(np.count_nonzero(~result.converged))
@@ -259,19 +214,18 @@ class Engine:
                 sink(event)
         stream.observe(X)
 
-    def _localise(self, stream: EntityStream, X: np.ndarray, result: BatchResult) -> list[dict | None] | None:
+    def _localise(self, record: EntityRecord, X: np.ndarray, result: BatchResult) -> list[dict | None] | None:
         """The batch's ``window_metrics``; a failed factorisation costs the window, never the batch."""
         try:
-            return self.windows.localise(stream, X, result)
+            return self.windows.localise(record, X, result)
         except np.linalg.LinAlgError:
-            self.windows.forget(stream.entity)
+            IncidentWindows.forget(record)
             self.counts.localisation_failed += 1
             return None
 
-    def _rewarm(self, stream: EntityStream, why: str) -> None:
+    def _rewarm(self, record: EntityRecord, why: str) -> None:
         """A model that went bad is never scored with: the entity warms up again, and says so."""
-        stream.rewarm()
-        if self.windows is not None:
-            self.windows.forget(stream.entity)
+        record.stream.rewarm()
+        IncidentWindows.forget(record)
         self.counts.rewarmed += 1
-        self.rewarmed.append((stream.entity, why))
+        self.rewarmed.append((record.entity, why))
