@@ -308,13 +308,21 @@ class Config:
         return DecodeLimits(max_bytes=self.input.max_message_bytes, max_metrics=self.input.max_metrics_per_message)
 
     def kafka_settings(self, url: str) -> KafkaSettings:
-        """Kafka client settings for a ``kafka://`` URL: [kafka], with the password as loaded (file or env)."""
+        """Kafka client settings for a ``kafka://`` URL and [kafka]; a password file is read again
+        here, when the client is about to connect (it may have been rotated since loading)."""
         bootstrap, topic, group = parse_kafka_url(url)
         k = self.kafka
+        password = k.sasl_password
+        if k.sasl_password_file:
+            try:
+                password = Path(k.sasl_password_file).read_text().strip()
+            except OSError as exc:
+                raise ConfigError(f"kafka.sasl_password_file: cannot read {k.sasl_password_file}: "
+                                  f"{exc.strerror}") from None
         version = None if k.api_version == "auto" else tuple(int(p) for p in k.api_version.split("."))
         return KafkaSettings(bootstrap=bootstrap, topic=topic, group=group, api_version=version,
                              security_protocol=k.security_protocol, sasl_mechanism=k.sasl_mechanism or None,
-                             sasl_username=k.sasl_username or None, sasl_password=k.sasl_password or None,
+                             sasl_username=k.sasl_username or None, sasl_password=password or None,
                              ssl_cafile=k.ssl_cafile or None, ssl_certfile=k.ssl_certfile or None,
                              ssl_keyfile=k.ssl_keyfile or None, session_timeout_ms=k.session_timeout_ms,
                              max_message_bytes=self.input.max_message_bytes,
@@ -388,7 +396,7 @@ def _check_kafka(values: dict[tuple[str, str], Any], sources: dict[tuple[str, st
             raise ConfigError(f"{where(key)}: cannot read {name}: {exc.strerror or type(exc).__name__}") from None
         if key == "sasl_password_file":
             try:
-                password = content.decode("utf-8").strip()   # as stream.service.kafka_settings reads it
+                password = content.decode("utf-8").strip()
             except UnicodeDecodeError:
                 raise ConfigError(f"{where(key)}: {name} is not UTF-8 text") from None
             if not password:

@@ -137,11 +137,8 @@ class Engine:
     @classmethod
     def from_config(cls, config: Config, **kwargs) -> "Engine":
         e = config.engine
-        rules = MetricRules(log_patterns=tuple(config.model.log_metrics),
-                            groups=tuple((k, tuple(v)) for k, v in config.model.groups.items()),
-                            group_by=tuple(config.model.group_by),
-                            max_metrics=e.max_metrics, drop_after=e.drop_after)
-        return cls(config.detector_config(), rules, batch_size=e.batch_size, max_entities=e.max_entities, **kwargs)
+        return cls(config.detector_config(), config.metric_rules(), batch_size=e.batch_size,
+                   max_entities=e.max_entities, **kwargs)
 
     def feed(self, vector: Vector) -> str | None:
         """Queue one vector; its entity's batch runs when it is full.

@@ -13,6 +13,7 @@ bounded by ``max_series``: beyond it new series are withheld and counted in
 from __future__ import annotations
 
 import re
+from collections.abc import Iterable
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -21,7 +22,7 @@ from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, gene
 from shiftsieve.models.decision import FIRING, PENDING, QUIET
 
 if TYPE_CHECKING:
-    from .engine import Engine
+    from .registry import EntityRecord
 
 #: Values of ``shiftsieve_metric_state``.
 STATE_VALUES = {PENDING: 1, FIRING: 2}
@@ -98,28 +99,29 @@ class Exporter:
                                        "on restore (the entity warms up again)", registry=r)
         self.snapshot_age = Gauge("shiftsieve_snapshot_age_seconds", "Seconds since the last state snapshot",
                                   registry=r)
-        self._shift_keys: dict[str, set[str]] = {}   # entity -> exported metric/column names
-        self._shift_count = 0
-        self._entity_keys: set[str] = set()
+        # Which series exist is kept on each entity's record (EntityRecord.exported); these count them.
+        self.shift_series = 0
+        self.entity_series = 0   # entities with their four gauges
 
     def _room(self) -> bool:
-        return self._shift_count + 4 * len(self._entity_keys) < self.max_series
+        return self.shift_series + 4 * self.entity_series < self.max_series
 
     def observe_events(self, events: list[dict]) -> None:
         for event in events:
             self.events.labels(event["state"]).inc()
 
-    def refresh(self, engine: "Engine", entities: list[str]) -> None:
-        """Bring the gauges of ``entities`` (those that just processed vectors) up to date."""
-        for name in entities:
-            stream = engine.entities[name]
+    def refresh(self, records: Iterable[EntityRecord]) -> None:
+        """Bring the gauges of ``records`` (entities that just processed vectors) up to date."""
+        for record in records:
+            stream = record.stream
             det = stream.detector
-            if name not in self._entity_keys:
+            if record.exported is None:
                 if not self._room():
                     self.withheld.inc()
                     continue
-                self._entity_keys.add(name)
-            label = label_value(name)   # the bookkeeping keeps raw names; only the labels are sanitised
+                record.exported = set()
+                self.entity_series += 1
+            label = label_value(record.entity)   # the bookkeeping keeps raw names; only the labels are sanitised
             self.rank.labels(label).set(det.baseline.rank)
             self.warming.labels(label).set(1 if det.warming_up else 0)
             self.last_sample.labels(label).set(stream.last_ts)
@@ -128,7 +130,7 @@ class Exporter:
             columns = stream.column_names
             tracker = det.tracker
             busy = np.flatnonzero(tracker.state != QUIET)   # few: loop over those only
-            exported = self._shift_keys.setdefault(name, set())
+            exported = record.exported
             live = set()
             for j in busy:
                 column = columns[j]
@@ -137,7 +139,7 @@ class Exporter:
                         self.withheld.inc()
                         continue
                     exported.add(column)
-                    self._shift_count += 1
+                    self.shift_series += 1
                 live.add(column)
                 self.state.labels(label, label_value(column)).set(STATE_VALUES[int(tracker.state[j])])
                 if tracker.state[j] == FIRING:
@@ -148,25 +150,27 @@ class Exporter:
 
     def _remove_shift(self, label: str, column: str) -> None:
         """Drop one exported metric's state and shift series (the caller updates its key set)."""
-        self._shift_count -= 1
+        self.shift_series -= 1
         for gauge in (self.state, self.shift):
             try:
                 gauge.remove(label, label_value(column))
             except KeyError:
                 pass
 
-    def forget(self, entity: str) -> None:
-        """Remove every series of ``entity`` (it moved to another process or was evicted)."""
-        label = label_value(entity)
-        for column in self._shift_keys.pop(entity, set()):
+    def forget(self, record: EntityRecord) -> None:
+        """Remove every series of the entity (it moved to another process or was evicted)."""
+        if record.exported is None:
+            return
+        label = label_value(record.entity)
+        for column in record.exported:
             self._remove_shift(label, column)
-        if entity in self._entity_keys:
-            self._entity_keys.discard(entity)
-            for gauge in (self.rank, self.warming, self.last_sample, self.residual):
-                try:
-                    gauge.remove(label)
-                except KeyError:
-                    pass
+        record.exported = None
+        self.entity_series -= 1
+        for gauge in (self.rank, self.warming, self.last_sample, self.residual):
+            try:
+                gauge.remove(label)
+            except KeyError:
+                pass
 
     def exposition(self) -> bytes:
         return generate_latest(self.registry)

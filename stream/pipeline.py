@@ -17,7 +17,7 @@ from collections import Counter
 from collections.abc import Callable, Iterable
 
 from .config import Config
-from .decode import DecodeError, DecodeLimits, Vector, decode_vector, encode_vector
+from .decode import DecodeError, Vector, decode_vector, encode_vector
 from .engine import Engine
 from .lines import Rejected
 from .otlp import decode_otlp
@@ -32,12 +32,6 @@ Admit = Callable[[Vector, int, str], bool]
 Admitted = Callable[[Vector, int, str], None]
 
 
-def decode_limits(config: Config) -> DecodeLimits:
-    """The per-message bounds of the [input] section."""
-    return DecodeLimits(max_bytes=config.input.max_message_bytes,
-                        max_metrics=config.input.max_metrics_per_message)
-
-
 class MessageDecoder:
     """A message's complete vectors in the configured encoding (``source.encoding``).
 
@@ -50,7 +44,7 @@ class MessageDecoder:
         source = config.source
         self.encoding = source.encoding
         self.entity_labels = source.entity_labels
-        self.limits = decode_limits(config)
+        self.limits = config.decode_limits()
         self.reject = reject
         self.skipped = 0   # OTLP points of kinds the detector does not read (histograms, ...)
         self.assembler = None if self.encoding == "vector" else SampleAssembler(

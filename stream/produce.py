@@ -263,13 +263,12 @@ class _KafkaWriter:
 
     def __init__(self, config: Config, brokers: str, topic: str) -> None:
         from .kafka import KafkaSettings, describe_error, import_kafka   # noqa: PLC0415  (kafka-python is heavy)
-        from .sources import kafka_settings   # noqa: PLC0415
         self.describe_error = describe_error
         try:   # the bootstrap list and topic, checked with the settings' own one-line messages
             hosts = KafkaSettings(bootstrap=brokers, topic=topic, group=_GROUP).bootstrap
         except ValueError as exc:
             raise ProduceError(str(exc)) from None
-        settings = kafka_settings(config, f"kafka://{','.join(hosts)}/{topic}?group={_GROUP}")
+        settings = config.kafka_settings(f"kafka://{','.join(hosts)}/{topic}?group={_GROUP}")
         self.kafka = import_kafka()
         self.topic, self.where = topic, ",".join(hosts)
         kwargs = settings.producer_kwargs()   # max_block_ms bounds every wait for metadata

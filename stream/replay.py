@@ -20,7 +20,7 @@ from .config import Config
 from .engine import BatchObserver, Engine, EventSink
 from .events import EventFileWriter
 from .lines import InputError, Rejected
-from .pipeline import Pipeline, decode_limits
+from .pipeline import Pipeline
 from .readers import DeadLetterWriter, RecordStream, input_size, open_records
 
 
@@ -88,7 +88,7 @@ class Progress:
 def open_input(path: str | Path, config: Config) -> RecordStream:
     """The records of a replay input under the configured limits and entity labels (the one way
     replay, evaluate and tune read their input)."""
-    return open_records(path, decode_limits(config), entity_labels=config.source.entity_labels,
+    return open_records(path, config.decode_limits(), entity_labels=config.source.entity_labels,
                         max_file_bytes=config.input.max_file_bytes)
 
 

@@ -27,9 +27,10 @@ from .engine import Engine
 from .events import EventFileWriter
 from .exporter import Exporter
 from .lines import Rejected
-from .pipeline import Pipeline, decode_limits
+from .pipeline import Pipeline
 from .readers import DeadLetterWriter
-from .sources import KafkaInput, LineSource, Message, kafka_settings
+from .registry import EntityRecord
+from .sources import KafkaInput, LineSource, Message
 from .state import SnapshotError, StateDirectory
 
 
@@ -46,13 +47,12 @@ class Service:
         self.exporter = Exporter(max_series=config.http.max_series)
         self._emitted: list[dict] = []   # events of the current flush, for the exporter's counters
         self.engine = Engine.from_config(config, sinks=[self._emitted.append])
+        self.engine.registry.on_remove.append(self.exporter.forget)   # a dropped entity's series go with it
         self.pipeline = Pipeline(self.engine, config, reject_sinks=[self._dead_letter],
                                  admit=self._admit, admitted=self._admitted)
         self._sample_counts: dict[str, int] = {}
         self.kafka_sink = None
         self.state = StateDirectory(config.state.directory) if config.state.directory else None
-        self._covered: dict[str, dict[str, int]] = {}   # entity -> offsets its restored snapshot includes
-        self._partition_of: dict[str, str] = {}   # entity -> the "topic/partition" its vectors come from
         self._lock = threading.RLock()   # engine and state: the poll loop vs. rebalance callbacks
         self.source = None
         self.dead: DeadLetterWriter | None = None
@@ -79,7 +79,7 @@ class Service:
                 if self.dead_letter_path else None
             kafka = self.source_url.startswith("kafka://")
             if kafka:
-                settings = kafka_settings(self.config, self.source_url)
+                settings = self.config.kafka_settings(self.source_url)
                 if self.config.kafka.alert_topic or self.config.kafka.dead_letter_topic:
                     from .kafka import KafkaSink
                     self.kafka_sink = KafkaSink(settings)
@@ -96,7 +96,7 @@ class Service:
                                                   on_assign=self._assigned)
                 stack.callback(source.close)
             else:
-                source = self.source = LineSource(self.source_url, limits=decode_limits(self.config))
+                source = self.source = LineSource(self.source_url, limits=self.config.decode_limits())
             self._snapshot_at = time.monotonic()
             self.endpoints = Endpoints(self.listen, self.exporter.exposition, lambda: self.ready).start()
             stack.callback(self.endpoints.stop)
@@ -115,7 +115,7 @@ class Service:
                     if self.state is not None and \
                             time.monotonic() - self._snapshot_at >= self.config.state.snapshot_seconds:
                         self._snapshot()
-                    durable = not engine.queued and (self.state is None or not engine.touched_since_snapshot)
+                    durable = not engine.queued and (self.state is None or not engine.registry.unsaved)
                 if kafka:
                     if durable:
                         # Offsets are committed once what they cover is durable: every vector is in
@@ -163,10 +163,10 @@ class Service:
             print(f"shiftsieve: warning: entity {entity!r} warms up again: {why}", file=sys.stderr)
             self.exporter.rewarmed.inc()
         self.engine.rewarmed.clear()
-        touched = self.engine.touched
-        if touched:
-            self.exporter.refresh(self.engine, sorted(touched))
-            touched.clear()
+        registry = self.engine.registry
+        if registry.ran:
+            self.exporter.refresh([registry[entity] for entity in sorted(registry.ran)])
+            registry.ran.clear()
             self.exporter.batch_seconds.observe(self._busy + time.perf_counter() - started)
             self._busy = 0.0
         if self._oldest_ms is not None:
@@ -204,67 +204,61 @@ class Service:
                 self.exporter.lag.remove(topic, partition)
             except KeyError:
                 pass
-        for entity in [e for e, p in self._partition_of.items() if p in gone]:
-            self._drop(entity)
-
-    def _drop(self, entity: str) -> None:
-        self.engine.drop(entity)
-        self.exporter.forget(entity)
-        self._covered.pop(entity, None)
-        self._partition_of.pop(entity, None)
+        for entity in [r.entity for r in self.engine.registry.records() if r.partition in gone]:
+            self.engine.drop(entity)
 
     def _evict(self) -> None:
         """Hold at most engine.max_resident models: the least recently seen beyond it are
         snapshotted (with a state directory; restored when they return) and dropped."""
         limit = self.config.engine.max_resident
-        if not limit or len(self.engine.entities) <= limit:
+        registry = self.engine.registry
+        if not limit or len(registry) <= limit:
             return
         positions = self._positions()
-        for entity in self.engine.least_recent(limit):
-            if self.state is not None and entity in self.engine.touched_since_snapshot:
-                self.state.save(self.engine.entities[entity], positions)
-            self._drop(entity)
+        for entity in registry.least_recent(limit):
+            if self.state is not None and entity in registry.unsaved:
+                self.state.save(registry[entity].stream, positions)
+            self.engine.drop(entity)
             self.exporter.evicted.inc()
 
     def _admit(self, vector: Vector, position: int, partition: str) -> bool:
         """Before a vector enters its model: restore its entity from a snapshot the first time, and
         skip what that snapshot already includes (exactly once in model state)."""
-        entity = vector.entity
-        if entity not in self.engine.entities:
-            self._restore(entity)
-        covered = self._covered.get(entity, {}).get(partition)
+        record = self.engine.registry.get(vector.entity) or self._restore(vector.entity)
+        covered = record.covered.get(partition) if record is not None else None
         return covered is None or position >= covered
 
     def _admitted(self, vector: Vector, position: int, partition: str) -> None:
-        self._partition_of[vector.entity] = partition
+        self.engine.registry[vector.entity].partition = partition
 
-    def _restore(self, entity: str) -> None:
+    def _restore(self, entity: str) -> EntityRecord | None:
         """Adopt ``entity``'s snapshot from the state directory, if it has one (an entity seen for
         the first time, after a restart or after its partition moved here)."""
         engine = self.engine
-        if self.state is None or len(engine.entities) >= engine.max_entities:
-            return
+        if self.state is None or len(engine.registry) >= engine.max_entities:
+            return None
         try:
             restored = self.state.load(entity, engine.rules, engine.detector_config)
         except SnapshotError as exc:   # a corrupt snapshot costs its entity's state, never the service
             print(f"shiftsieve: warning: {exc}; that entity warms up again", file=sys.stderr)
             self.exporter.snapshot_errors.inc()
-            return
-        if restored is not None:
-            stream, offsets = restored
-            engine.adopt(stream)
-            self._covered[entity] = offsets
+            return None
+        if restored is None:
+            return None
+        stream, offsets = restored
+        return engine.adopt(stream, covered=offsets)
 
     def _snapshot(self) -> None:
         """Write the snapshots of the entities that changed, covering everything consumed so far."""
         if self.engine.queued:
             self.flush()
         positions = self._positions()
-        engine = self.engine
-        for entity in sorted(engine.touched_since_snapshot):
-            self.state.save(engine.entities[entity], positions)
-            self._covered[entity] = positions
-        engine.touched_since_snapshot.clear()
+        registry = self.engine.registry
+        for entity in sorted(registry.unsaved):
+            record = registry[entity]
+            self.state.save(record.stream, positions)
+            record.covered = positions
+        registry.unsaved.clear()
         self._snapshot_at = time.monotonic()
         self.exporter.snapshot_age.set(0.0)
 

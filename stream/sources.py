@@ -16,7 +16,6 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Protocol
 
-from .config import Config, ConfigError
 from .decode import DEFAULT_LIMITS, DecodeLimits
 from .lines import CHUNK_BYTES, Rejected, split_lines, strip_bom
 
@@ -110,28 +109,6 @@ class LineSource:
 
     def close(self) -> None:
         """The reading thread ends with its input (it is a daemon: it never holds the process)."""
-
-
-def kafka_settings(config: Config, url: str) -> "KafkaSettings":
-    """Client settings from a ``kafka://`` URL and the [kafka] section (secrets from file or env)."""
-    from .kafka import KafkaSettings, parse_kafka_url
-    bootstrap, topic, group = parse_kafka_url(url)
-    k = config.kafka
-    password = k.sasl_password
-    if k.sasl_password_file:
-        try:
-            password = Path(k.sasl_password_file).read_text().strip()
-        except OSError as exc:
-            raise ConfigError(f"kafka.sasl_password_file: cannot read {k.sasl_password_file}: "
-                              f"{exc.strerror}") from None
-    version = None if k.api_version == "auto" else tuple(int(p) for p in k.api_version.split("."))
-    return KafkaSettings(bootstrap=bootstrap, topic=topic, group=group, api_version=version,
-                         security_protocol=k.security_protocol, sasl_mechanism=k.sasl_mechanism or None,
-                         sasl_username=k.sasl_username or None, sasl_password=password or None,
-                         ssl_cafile=k.ssl_cafile or None, ssl_certfile=k.ssl_certfile or None,
-                         ssl_keyfile=k.ssl_keyfile or None, session_timeout_ms=k.session_timeout_ms,
-                         max_message_bytes=config.input.max_message_bytes,
-                         fetch_partition_bytes=k.fetch_partition_bytes)
 
 
 class KafkaInput:

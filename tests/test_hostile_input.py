@@ -704,7 +704,7 @@ def test_hostile_names_cannot_break_or_inject_into_the_exposition(items: list[tu
     engine = engine_of(vectors)
     shifts = mark_busy(engine)
     exporter = Exporter()
-    exporter.refresh(engine, sorted(engine.entities))
+    exporter.refresh(engine.registry.records())
     check_exposition(exporter.exposition(), set(engine.entities), shifts)
 
 
@@ -727,7 +727,7 @@ def test_real_shifts_with_hostile_names_round_trip() -> None:
     busy = {(entity, stream.column_names[j]) for j in np.flatnonzero(stream.detector.tracker.state != QUIET)}
     assert busy & {(entity, n) for n in shifted}, "the shift should fire on at least one shifted metric"
     exporter = Exporter()
-    exporter.refresh(engine, [entity])
+    exporter.refresh([engine.registry[entity]])
     check_exposition(exporter.exposition(), {entity}, busy)
 
 
@@ -739,11 +739,11 @@ def test_names_the_decoder_refuses_cannot_break_the_exposition_either() -> None:
     engine = engine_of(vectors)
     shifts = mark_busy(engine)
     exporter = Exporter()
-    exporter.refresh(engine, sorted(engine.entities))
+    exporter.refresh(engine.registry.records())
     check_exposition(exporter.exposition(), set(engine.entities), shifts)
     # resolved: the shift series of the sanitised names are removed again
     engine.entities["plain"].detector.tracker.state[:] = QUIET
-    exporter.refresh(engine, ["plain"])
+    exporter.refresh([engine.registry["plain"]])
     check_exposition(exporter.exposition(), set(engine.entities), {s for s in shifts if s[0] != "plain"})
-    exporter.forget("\ud800x\x00")
+    exporter.forget(engine.registry["\ud800x\x00"])
     check_exposition(exporter.exposition(), {"plain"}, set())

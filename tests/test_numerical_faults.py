@@ -74,7 +74,7 @@ def run(X: np.ndarray, engine: Engine | None = None, start: int = 0) -> tuple[En
 
 def gauge_values(engine: Engine) -> list[float]:
     exporter = Exporter()
-    exporter.refresh(engine, sorted(engine.entities))
+    exporter.refresh(engine.registry.records())
     text = exporter.exposition().decode()
     return [s.value for family in text_string_to_metric_families(text) for s in family.samples
             if s.name.startswith(("shiftsieve_shift_sigma", "shiftsieve_metric_state", "shiftsieve_entity_"))]

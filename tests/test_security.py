@@ -29,7 +29,6 @@ from shiftsieve.stream.cli import main
 from shiftsieve.stream.config import ENV_PREFIX, SCHEMA, ConfigError, load_config
 from shiftsieve.stream.endpoints import DEFAULT_LISTEN, Endpoints
 from shiftsieve.stream.kafka import KafkaSettings, KafkaSource
-from shiftsieve.stream.sources import kafka_settings
 
 ROOT = Path(__file__).resolve().parent.parent
 PACKAGES = ("stream", "models", "replay_data")
@@ -201,7 +200,7 @@ def _secure_config(tmp_path: Path, monkeypatch, mechanism: str, source: str, pas
 def test_tls_and_sasl_reach_the_kafka_python_keyword_arguments(mechanism, source, tmp_path, env):
     from kafka import KafkaConsumer, KafkaProducer
     path, tls = _secure_config(tmp_path, env, mechanism, source)
-    settings = kafka_settings(load_config(path), URL)
+    settings = load_config(path).kafka_settings(URL)
     expected = {"security_protocol": "SASL_SSL", "sasl_mechanism": mechanism,
                 "sasl_plain_username": "svc-shiftsieve", "sasl_plain_password": PASSWORD, **tls}
     for kwargs, cls in ((settings.consumer_kwargs(), KafkaConsumer), (settings.producer_kwargs(), KafkaProducer)):
@@ -217,7 +216,7 @@ def test_tls_without_sasl(tmp_path, env):
     tls = _tls_files(tmp_path)
     path = tmp_path / "c.toml"
     path.write_text('[kafka]\nsecurity_protocol = "SSL"\n' + "".join(f'{k} = "{v}"\n' for k, v in tls.items()))
-    kwargs = kafka_settings(load_config(path), URL).consumer_kwargs()
+    kwargs = load_config(path).kafka_settings(URL).consumer_kwargs()
     assert kwargs["security_protocol"] == "SSL" and {k: kwargs[k] for k in tls} == tls
     assert "sasl_mechanism" not in kwargs and "sasl_plain_password" not in kwargs
 
@@ -237,7 +236,7 @@ def test_config_check_masks_the_password_from_every_source(source, tmp_path, env
 def test_password_file_content_wins_and_is_stripped(tmp_path, env):
     path, _ = _secure_config(tmp_path, env, "PLAIN", "file", password="  from-file  ")
     env.setenv("SHIFTSIEVE_KAFKA_SASL_PASSWORD", "from-env")
-    assert kafka_settings(load_config(path), URL).sasl_password == "from-file"
+    assert load_config(path).kafka_settings(URL).sasl_password == "from-file"
 
 
 def test_a_missing_password_file_is_a_one_line_error_naming_the_key(tmp_path, env, capsys):
@@ -249,8 +248,8 @@ def test_a_missing_password_file_is_a_one_line_error_naming_the_key(tmp_path, en
     err = capsys.readouterr().err
     assert err.startswith("shiftsieve: error: kafka.sasl_password_file") and err.count("\n") == 1
     assert str(secret) in err and "No such file" in err
-    with pytest.raises(ConfigError) as info:   # gone between loading and connecting (stream.service)
-        kafka_settings(config, URL)
+    with pytest.raises(ConfigError) as info:   # gone between loading and connecting (Config.kafka_settings)
+        config.kafka_settings(URL)
     assert str(info.value).startswith("kafka.sasl_password_file") and "\n" not in str(info.value)
     env.setenv("SHIFTSIEVE_KAFKA_SASL_PASSWORD_FILE", str(tmp_path / "other"))
     assert main(["config", "check", str(path)]) == 2

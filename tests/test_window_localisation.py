@@ -10,7 +10,8 @@ from scipy import stats
 from sklearn.linear_model import MultiTaskLasso
 
 from shiftsieve.models.decision import DecisionConfig
-from shiftsieve.models.detector import DetectorConfig, EntityDetector, threshold_for, window_threshold
+from shiftsieve.models.detector import DetectorConfig, EntityDetector
+from shiftsieve.models.thresholds import threshold_for, window_threshold
 from shiftsieve.models.mmv import group_lasso_mmv, rank_rows
 from shiftsieve.stream.assemble import MetricRules
 from shiftsieve.stream.config import load_config
@@ -148,14 +149,16 @@ def test_windows_are_bounded_and_cleared_when_the_incident_closes():
     rows = [e["window_metrics"]["rows"] for e in events]
     assert rows and max(rows) == 30 and min(rows) >= 1
     assert events[-1]["state"] == "resolved"
-    assert len(engine.windows) == 0                 # closed: no window kept
-    for tail in engine.windows._tails.values():     # raw rows only for pending entities, at most lead
-        assert tail.shape[0] <= engine.windows.lead
+    records = list(engine.registry.records())
+    assert all(r.window is None for r in records)   # closed: no window kept
+    for r in records:                               # raw rows only for pending entities, at most lead
+        assert r.tail is None or r.tail.shape[0] <= engine.windows.lead
     # An entity that goes takes its window with it.
     engine2, _ = run_engine(low_rank_stream(4)[:START + 20])
-    assert len(engine2.windows) == 1
+    record = engine2.registry["svc"]
+    assert record.window is not None
     engine2.drop("svc")
-    assert len(engine2.windows) == 0 and not engine2.windows._tails
+    assert "svc" not in engine2.registry and engine2.registry.get("svc") is None
 
 
 def test_localisation_changes_no_alert_and_is_off_with_window_rows_zero(synthetic):
@@ -175,7 +178,8 @@ def test_a_failed_factorisation_costs_the_window_not_the_alerts(synthetic, monke
     engine, events = run_engine(low_rank_stream(0))
     assert all("window_metrics" not in e for e in events)
     assert [{k: v for k, v in e.items() if k != "window_metrics"} for e in with_windows] == events
-    assert engine.counts.localisation_failed > 0 and len(engine.windows) == 0
+    assert engine.counts.localisation_failed > 0
+    assert all(r.window is None for r in engine.registry.records())
 
 
 def test_a_restored_incident_starts_a_fresh_window(tmp_path):
@@ -193,7 +197,7 @@ def test_a_restored_incident_starts_a_fresh_window(tmp_path):
     engine2.flush()
     closing = [e for e in later if e["state"] == "resolved"]
     assert closing and closing[-1]["window_metrics"]["rows"] <= int(closing[-1]["ts"]) - (START + 20) + 1
-    assert len(engine2.windows) == 0
+    assert engine2.registry["svc"].window is None
 
 
 def test_replay_multi_shift_closing_events_localise_the_labelled_fault():

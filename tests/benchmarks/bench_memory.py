@@ -211,15 +211,13 @@ def child(params: dict) -> dict:
     gauges = {"shift_sigma": ex.shift, "metric_state": ex.state, "residual_norm": ex.residual,
               "baseline_rank": ex.rank, "warming_up": ex.warming, "last_sample": ex.last_sample}
     sizes = {
-        "engine.entities": len(engine.entities),
-        "engine._pending": len(engine._pending),
-        "engine._recent": len(engine._recent),
-        "engine.touched": len(engine.touched),
-        "engine.touched_since_snapshot": len(engine.touched_since_snapshot),
-        "service._covered": len(service._covered),
-        "service._partition_of": len(service._partition_of),
-        "exporter._entity_keys": len(ex._entity_keys),
-        "exporter._shift_keys": len(ex._shift_keys),
+        "registry records": len(engine.registry),
+        "registry records with pending": sum(1 for r in engine.registry.records() if r.pending),
+        "registry.ran": len(engine.registry.ran),
+        "registry.unsaved": len(engine.registry.unsaved),
+        "records with covered offsets": sum(1 for r in engine.registry.records() if r.covered),
+        "exporter entity series": ex.entity_series,
+        "exporter shift series": ex.shift_series,
         **{f"gauge {name} series": len(g._metrics) for name, g in gauges.items()},
     }
     snap_files = snap_bytes = 0

@@ -147,10 +147,10 @@ class Recorder:
         self._take(lines)
         self._stamps.extend(getattr(self.service.source, "timestamps_ms", None) or [])
 
-    def refresh(self, engine, entities) -> None:
-        self._refresh(engine, entities)
+    def refresh(self, records) -> None:
+        self._refresh(records)
         now = time.time()
-        self.calls.append((time.perf_counter(), engine.counts.processed, len(self._stamps)))
+        self.calls.append((time.perf_counter(), self.service.engine.counts.processed, len(self._stamps)))
         if self.latency:
             self.latencies.extend(now - ms / 1000 for ms in self._stamps)
         self._stamps = []
