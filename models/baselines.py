@@ -30,9 +30,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.special import ndtri
 
-from .detector import threshold_for, truncated_second_moment
 from .normaliser import RobustNormaliser, column_median, decay_for_halflife
 from .pcp import PCPResult, principal_component_pursuit
+from .thresholds import threshold_for, truncated_second_moment
 
 
 @dataclass(frozen=True)

@@ -69,10 +69,22 @@ class Transition:
 
 
 @dataclass
-class _Incident:
+class Incident:
+    """The open incident of an entity: when it began, the columns firing in it (``members``) and
+    those that fired in it and have since cleared (``resolved``)."""
+
     onset_ts: float
     members: set[int] = field(default_factory=set)
     resolved: set[int] = field(default_factory=set)
+
+    def to_state(self) -> dict:
+        """As plain JSON values (sorted column lists)."""
+        return {"onset_ts": self.onset_ts, "members": sorted(self.members), "resolved": sorted(self.resolved)}
+
+    @classmethod
+    def from_state(cls, state: dict) -> Incident:
+        """Inverse of :meth:`to_state`."""
+        return cls(float(state["onset_ts"]), set(state["members"]), set(state["resolved"]))
 
 
 class AlertTracker:
@@ -101,7 +113,7 @@ class AlertTracker:
         self.peak_shift = np.zeros(n_metrics)
         self.peak_value = np.zeros(n_metrics)
         self.peak_expected = np.zeros(n_metrics)
-        self.incident: _Incident | None = None
+        self.incident: Incident | None = None
 
     @property
     def n_metrics(self) -> int:
@@ -285,7 +297,7 @@ class AlertTracker:
         if fired.any():
             onset = self.incident is None
             if onset:
-                self.incident = _Incident(onset_ts=ts)
+                self.incident = Incident(onset_ts=ts)
             self.incident.members.update(hot[fired].tolist())
             out.append(Transition("firing", row, self.incident.onset_ts, hot[fired], shift[fired], value[fired],
                                   expected[fired], onset=onset))
@@ -305,6 +317,21 @@ class AlertTracker:
                                       self.peak_value[done], self.peak_expected[done]))
             self.incident = None
         return out
+
+    def to_state(self) -> dict:
+        """The per-metric arrays and the open incident (:meth:`Incident.to_state`, or None)."""
+        state: dict = {name: getattr(self, name) for name in self._PER_METRIC}
+        state["incident"] = None if self.incident is None else self.incident.to_state()
+        return state
+
+    @classmethod
+    def from_state(cls, state: dict, config: DecisionConfig = DecisionConfig()) -> AlertTracker:
+        """Inverse of :meth:`to_state`, with the settings ``config``."""
+        tracker = cls(state["state"].size, config)
+        for name in cls._PER_METRIC:
+            setattr(tracker, name, state[name])
+        tracker.incident = None if state["incident"] is None else Incident.from_state(state["incident"])
+        return tracker
 
     def extend(self, k: int) -> None:
         """Append ``k`` quiet metrics."""

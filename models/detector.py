@@ -17,81 +17,36 @@ For a batch ``X`` (B, n) of raw metric vectors (NaN = missing) the detector
 Until ``warmup`` vectors have arrived it only collects them.
 
 Joint localisation over an incident window is computed on demand, only for entities
-with an open incident: :meth:`BatchResult.window_residuals` gives a batch's rows as
-``Y = P z / d`` (the unshifted residual in residual sigmas) and
+with an open incident: :meth:`.batch_result.BatchResult.window_residuals` gives a batch's rows
+as ``Y = P z / d`` (the unshifted residual in residual sigmas) and
 :meth:`EntityDetector.localise_window` solves the multiple-measurement-vector problem
-``Y ~ A X`` on a window of them (:mod:`.mmv`: row-sparse group LASSO and M-SBL).
+``Y ~ A X`` on a window of them (:mod:`.window`).
+
+The warm-up fit is :mod:`.warmup`, the probation of late metrics :mod:`.probation`, the
+thresholds :mod:`.thresholds`.  :meth:`EntityDetector.to_state` and
+:meth:`EntityDetector.from_state` carry everything the detector has learned.
 """
 
 from __future__ import annotations
 
-import math
-import warnings
 from dataclasses import dataclass, field, replace
-from typing import NamedTuple
 
 import numpy as np
-from scipy.special import chdtri, erf, ndtri
 
+from .batch_result import BatchResult, BatchUnits
 from .decision import FIRING, QUIET, AlertTracker, DecisionConfig, Transition
 from .dictionary import build_dictionary, column_scales, metric_effect
-from .lasso import gross_start, projected_residual, solve_projected_lasso
-from .mmv import MMVResult, group_lasso_mmv, msbl
-from .normaliser import (MAD_TO_SIGMA, RobustNormaliser, column_median, decay_for_halflife, from_metric_units,
-                         to_metric_units)
+from .lasso import gross_start, solve_projected_lasso
+from .normaliser import RobustNormaliser, decay_for_halflife
+from .probation import Probation
 from .refit import refit_solution
 from .subspace import DEFAULT_ENERGY, DEFAULT_HALFLIFE, DEFAULT_MAX_RANK, SubspaceTracker
-from .tail import fitted_tail_factors, tracked_tail_factors
+from .tail import tracked_tail_factors
+from .thresholds import threshold_for, truncated_second_moment
+from .warmup import fit_warmup
+from .window import WindowLocalisation, localise_window, window_dictionary
 
-
-def threshold_for(false_alarm: float) -> float:
-    """Two-sided Gaussian quantile ``lambda`` with ``P(|N(0,1)| > lambda) = false_alarm``."""
-    if not 0.0 < false_alarm < 1.0:
-        raise ValueError(f"false_alarm must be in (0, 1), got {false_alarm!r}")
-    return float(-ndtri(false_alarm / 2.0))
-
-
-def window_threshold(false_alarm: float, rows: int) -> float:
-    """The group LASSO's ``lam`` for a window of ``rows`` residuals: the chi quantile with
-    ``P(chi_rows > lam) = false_alarm``.
-
-    Under no shift a column's correlation with ``rows`` unit-variance residuals is a vector of
-    ``rows`` independent standard normals, whose norm is chi-distributed; its row of the
-    solution is zero exactly when that norm is ``<= lam``.  With one row this is
-    :func:`threshold_for` (``|N(0, 1)|`` is chi with one degree of freedom), so the window
-    keeps the per-sample false-alarm target.
-
-    >>> round(window_threshold(1e-3, 1), 6) == round(threshold_for(1e-3), 6)
-    True
-    """
-    threshold_for(false_alarm)
-    if rows < 1:
-        raise ValueError(f"rows must be >= 1, got {rows!r}")
-    return float(np.sqrt(chdtri(rows, false_alarm)))
-
-
-def truncated_second_moment(c: float | np.ndarray) -> float | np.ndarray:
-    """``E[X^2 | |X| < c]`` for standard normal X: ``1 - 2 c phi(c) / (2 Phi(c) - 1)``.
-
-    Residual scales are estimated from the samples the LASSO did not select, i.e. with
-    ``|residual| < lambda d``; their mean square underestimates ``d^2`` by this factor.
-
-    >>> round(float(truncated_second_moment(50.0)), 12)
-    1.0
-    """
-    c = np.asarray(c, dtype=float)
-    inside = erf(c / math.sqrt(2.0))  # P(|X| < c)
-    density = np.exp(-0.5 * c * c) / math.sqrt(2.0 * math.pi)
-    moment = 1.0 - 2.0 * c * density / inside
-    return float(moment) if moment.ndim == 0 else moment
-
-
-def _robust_scale(R: np.ndarray) -> np.ndarray:
-    """Per column of ``R`` (NaN = missing) ``MAD_TO_SIGMA`` times the median of ``|R|`` (NaN for a
-    column with no value): the robust scale of a residual centred at 0."""
-    with warnings.catch_warnings():   # metrics absent from the warm-up: all-NaN columns
-        warnings.simplefilter("ignore", RuntimeWarning)
-        return MAD_TO_SIGMA * column_median(np.abs(R))
+__all__ = ["DetectorConfig", "EntityDetector"]
 
 
 @dataclass(frozen=True)
@@ -127,76 +82,15 @@ class DetectorConfig:
     def threshold(self) -> float:
         return threshold_for(self.false_alarm)
 
+    @property
+    def normaliser_settings(self) -> dict:
+        """Keyword arguments of the entity's :class:`.normaliser.RobustNormaliser` (and its extensions)."""
+        return {"halflife": self.normaliser_halflife, "settle": self.min_samples}
 
-class BatchUnits(NamedTuple):
-    """The units a batch was scored with.  Learning replaces these arrays, never mutates them,
-    so a batch's result keeps meaning what it meant when it was computed."""
-
-    basis: np.ndarray            # U (n, r)
-    loc: np.ndarray              # normaliser location (n,)
-    scale: np.ndarray            # normaliser scale (n,)
-    log_mask: np.ndarray         # (n,) bool
-    residual_scale: np.ndarray   # alert scale d kappa (n,): residual sigmas as reported
-    modelled: np.ndarray         # (n,) bool, metrics the basis knows
-
-
-@dataclass(frozen=True)
-class WindowLocalisation:
-    """Joint localisation over a window of residuals (see :meth:`EntityDetector.localise_window`).
-
-    ``columns`` (q,) are the dictionary columns (metrics, then groups) the two solutions' rows
-    stand for; coefficients are shifts in residual sigmas, one column per window row.
-    """
-
-    columns: np.ndarray
-    group_lasso: MMVResult
-    msbl: MMVResult
-    lam: float
-    rows: int
-
-
-@dataclass(frozen=True)
-class BatchResult:
-    """What one batch produced.  Arrays are (B, n) unless noted; empty while warming up."""
-
-    transitions: list[Transition]
-    shift_sigma: np.ndarray      # debiased per-metric shift in residual sigmas (0 off the support)
-    coords: np.ndarray           # (B, r) baseline coordinates, in the basis used for this batch
-    residual_norm: np.ndarray    # (B,) norm of the projected residual, in residual sigmas
-    n_iter: np.ndarray           # (B,) solver iterations
-    converged: np.ndarray        # (B,) solver reached its tolerance
-    units: BatchUnits | None = None   # what the batch was scored with (None while warming up)
-
-    def expected(self) -> np.ndarray:
-        """The baseline's expected value (B, n) in the metrics' own units (NaN while warming up).
-
-        Computed on demand: the hot path needs it only for the few busy metrics.  The basis
-        rotates as it learns, so coordinates only mean something with the basis of their batch.
-        """
-        if self.units is None:
-            return np.full(self.shift_sigma.shape, np.nan)
-        u = self.units
-        return to_metric_units(self.coords @ u.basis.T, u.loc, u.scale, u.log_mask)
-
-    def window_residuals(self, X: np.ndarray) -> np.ndarray:
-        """Rows ``X`` (k, n) in this batch's units as joint-localisation residuals: ``Y = P z / d``,
-        the projected residual of the *unshifted* normalised vector, metric j in residual sigmas.
-
-        A shift of ``c`` sigmas on metric j adds ``c d_j P e_j / d`` to a row, which is ``c``
-        times column j of :meth:`EntityDetector.window_dictionary`.  An entry that is missing or
-        unknown to the basis is 0 (no evidence), the rest are the residual of the basis fitted to
-        the row's other entries, as the per-sample solver sees them.  Computed on demand (for
-        entities with an open incident), never on the hot path.  Values are clipped at
-        ``WINDOW_LIMIT`` residual sigmas.
-        """
-        if self.units is None:
-            raise ValueError("no units: the batch was collected for warm-up, not scored")
-        u = self.units
-        Z = np.clip(from_metric_units(X, u.loc, u.scale, u.log_mask), -EntityDetector.Z_LIMIT, EntityDetector.Z_LIMIT)
-        mask = np.isfinite(Z) & u.modelled
-        residual, _ = projected_residual(Z, u.basis, np.zeros_like(Z), mask=None if mask.all() else mask)
-        limit = EntityDetector.WINDOW_LIMIT
-        return np.clip(residual / u.residual_scale, -limit, limit)
+    @property
+    def baseline_settings(self) -> dict:
+        """Keyword arguments of the entity's :class:`.subspace.SubspaceTracker`."""
+        return {"rank": self.rank, "energy": self.energy, "max_rank": self.max_rank, "halflife": self.baseline_halflife}
 
 
 class EntityDetector:
@@ -223,19 +117,15 @@ class EntityDetector:
         self.config = config
         self.lam = config.threshold
         self._scale_decay = decay_for_halflife(config.scale_halflife)
-        self.normaliser = RobustNormaliser(np.asarray(log_mask, bool), halflife=config.normaliser_halflife,
-                                           settle=config.min_samples)
-        self.baseline = SubspaceTracker(rank=config.rank, energy=config.energy, max_rank=config.max_rank,
-                                        halflife=config.baseline_halflife)
+        self.normaliser = RobustNormaliser(np.asarray(log_mask, bool), **config.normaliser_settings)
+        self.baseline = SubspaceTracker(**config.baseline_settings)
         self.tracker = AlertTracker(n_metrics, config.decision)
         self.residual_scale = np.ones(n_metrics)
         self.tail_factor = np.ones(n_metrics)
         self.warm_start = np.zeros(n_metrics)
         self.set_groups(list(groups or []))
         self._warmup_rows: list[np.ndarray] = []
-        # Metrics on probation (seen after warm-up, not yet modelled): per metric the sums
-        # sum w w^T, sum w z, sum z^2 over their samples, w = baseline coordinates.
-        self._probation: dict[int, list] = {}
+        self.probation = Probation()   # metrics seen after warm-up, not yet modelled
         self.admitted = np.zeros(n_metrics, dtype=bool)
         self.samples = 0
 
@@ -266,8 +156,7 @@ class EntityDetector:
         if self.warming_up:
             self._warmup_rows = [np.concatenate([r, np.full(k, np.nan)]) for r in self._warmup_rows]
         self.tracker.keep(np.arange(self.n_metrics))   # group states go; set_groups re-adds them
-        self.normaliser.extend(RobustNormaliser(log_mask, halflife=self.config.normaliser_halflife,
-                                                     settle=self.config.min_samples))
+        self.normaliser.extend(RobustNormaliser(log_mask, **self.config.normaliser_settings))
         self.baseline.extend(k)
         self.tracker.extend(k)
         self.residual_scale = np.concatenate([self.residual_scale, np.ones(k)])
@@ -286,9 +175,36 @@ class EntityDetector:
         self.tail_factor = self.tail_factor[index]
         self.admitted = self.admitted[index]
         self.warm_start = self.warm_start[index]
-        renumber = {int(old): new for new, old in enumerate(index)}
-        self._probation = {renumber[j]: v for j, v in self._probation.items() if j in renumber}
+        self.probation.keep(index)
         self.set_groups([])
+
+    # -- state ---------------------------------------------------------------------------------
+    def to_state(self) -> dict:
+        """Everything the detector has learned, as numpy arrays and plain values, its parts' under
+        their names.  ``config`` is not state: lambda, the decays, the dictionary and its step size
+        are derived from it and the groups.  The arrays are the detector's own, not copies."""
+        rows = self._warmup_rows
+        return {"normaliser": self.normaliser.to_state(), "baseline": self.baseline.to_state(),
+                "tracker": self.tracker.to_state(), "probation": self.probation.to_state(self.baseline.rank),
+                "residual_scale": self.residual_scale, "tail_factor": self.tail_factor, "admitted": self.admitted,
+                "warm_start": self.warm_start,
+                "warmup_rows": np.array(rows, dtype=float).reshape(len(rows), self.n_metrics),
+                "groups": [np.asarray(g, dtype=np.int64) for g in self.groups], "samples": self.samples}
+
+    @classmethod
+    def from_state(cls, state: dict, config: DetectorConfig = DetectorConfig()) -> EntityDetector:
+        """Inverse of :meth:`to_state`, with the settings ``config``."""
+        log_mask = state["normaliser"]["log_mask"]
+        det = cls(log_mask.size, log_mask, config, state["groups"])
+        det.normaliser = RobustNormaliser.from_state(state["normaliser"], **config.normaliser_settings)
+        det.baseline = SubspaceTracker.from_state(state["baseline"], **config.baseline_settings)
+        det.tracker = AlertTracker.from_state(state["tracker"], config.decision)
+        det.residual_scale, det.tail_factor = state["residual_scale"], state["tail_factor"]
+        det.admitted, det.warm_start = state["admitted"], state["warm_start"]
+        det._warmup_rows = list(state["warmup_rows"])
+        det.probation = Probation.from_state(state["probation"])
+        det.samples = state["samples"]
+        return det
 
     # -- the batch path ------------------------------------------------------------------------
     def process(self, X: np.ndarray, ts: np.ndarray) -> BatchResult:
@@ -306,31 +222,13 @@ class EntityDetector:
         self._warmup_rows.extend(X[:need])
         self.samples += min(need, X.shape[0])
         if len(self._warmup_rows) >= self.config.warmup:
-            self._fit_warmup(np.array(self._warmup_rows))
+            self.admitted, self.residual_scale, self.tail_factor = fit_warmup(
+                np.array(self._warmup_rows), self.normaliser, self.baseline,
+                min_samples=self.config.min_samples, false_alarm=self.config.false_alarm)
             self._warmup_rows = []
             if X.shape[0] > need:
                 return self._score_and_learn(X[need:], ts[need:], leading=need)
         return self._empty(X.shape[0])
-
-    def _fit_warmup(self, W: np.ndarray) -> None:
-        """Fit normaliser, baseline and residual scales on the warm-up block."""
-        norm = self.normaliser.fit(W)
-        usable = norm.count >= self.config.min_samples
-        self.admitted = usable.copy()
-        Z = np.where(usable, norm.transform(W), np.nan).clip(-self.WARMUP_CLIP, self.WARMUP_CLIP)
-        # Fit twice: the second time in units of each metric's noise, the error of predicting it
-        # from the others (a weighted PCA: the maximum-likelihood fit of a factor model with
-        # heteroscedastic noise). In robust-sigma units alone a metric with little shared movement
-        # has far more noise than one that moves with traffic, and its noise claims a direction.
-        self.baseline.fit(Z)
-        noise = self._prediction_noise(Z, self.baseline)
-        typical = float(np.median(noise[usable])) if usable.any() else 0.0
-        if typical > 0:   # 0: the baseline explains (nearly) everything, there is no noise to weigh by
-            norm.rescale(np.where(usable & (noise > 0), noise / typical, 1.0))
-        Z = np.where(usable, norm.transform(W), np.nan).clip(-self.WARMUP_CLIP, self.WARMUP_CLIP)
-        self.baseline.fit(Z)
-        self.residual_scale, self.tail_factor = self._warmup_residual_scale(Z, self.baseline, self.config.false_alarm,
-                                                                            norm.quantisation_noise())
 
     #: Metrics whose leverage exceeds this are neither selected nor scored (see _score_and_learn):
     #: the baseline has a direction mostly their own, leaves them less than a fifth of their noise
@@ -338,55 +236,12 @@ class EntityDetector:
     #: and swing the coordinates (seen on the bundled multi_shift: leverages 0.955-0.972 gave
     #: 100-sigma "shifts" of flat metrics).
     MAX_SCORED_LEVERAGE = 0.8
-    #: Warm-up values beyond this many robust sigmas are clipped, so a wild outlier of the warm-up
-    #: cannot own a baseline direction; recurring patterns such as batch jobs stay below it and are
-    #: learned (clipping them harder would bend their direction).
-    WARMUP_CLIP = 50.0
-
-    #: Columns M-SBL starts from in a joint-window localisation (the most correlated with the
-    #: window). Measured on bench_service's stream (n = 200, 12 events): the localisation went
-    #: from a median of 55 to 17 ms per event, with the same top 3 in 11 of the 12 events (the
-    #: tail of a top ten is noise-level columns and reorders).
-    WINDOW_CANDIDATES = 50
-
-    #: Normalised values are clipped here before scoring: a value 1e300 away would overflow the
-    #: squares of the solver; a billion robust sigmas is still an unmistakable shift.
-    Z_LIMIT = 1e9
-    #: Window residuals are clipped here (residual sigmas): a larger value says no more about which
-    #: metric moved, and M-SBL's covariance ``I + A Gamma A^T`` would stop being numerically positive
-    #: definite (seen with a jump of 1e12).
-    WINDOW_LIMIT = 1e4
-
     def is_finite(self) -> bool:
         """Whether every learned array is finite (a False here means the entity must warm up again)."""
         norm = self.normaliser
         return all(np.isfinite(a).all() for a in (self.baseline.U, self.baseline.singular_values, norm.loc,
                                                    norm.scale, self.residual_scale, self.tail_factor, self.warm_start,
                                                    self.tracker.peak_shift))
-
-    @staticmethod
-    def _prediction_noise(Z: np.ndarray, tracker: SubspaceTracker) -> np.ndarray:
-        """Per metric the robust scale of its error when predicted from the other metrics through
-        the basis: the in-sample residual's MAD over ``1 - leverage`` (a direction a metric owns
-        predicts nothing about it; leave-one-out algebra of projections)."""
-        mad = _robust_scale(tracker.residuals(Z))
-        leverage = np.einsum("ij,ij->i", tracker.U, tracker.U)
-        return np.where(np.isfinite(mad), mad / np.maximum(1.0 - leverage, 0.01), 0.0)
-
-    @staticmethod
-    def _warmup_residual_scale(Z: np.ndarray, tracker: SubspaceTracker, false_alarm: float,
-                               floor: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Robust per-metric scale ``d`` of in-sample residuals, corrected for the r fitted
-        directions and never below ``floor`` (the quantisation noise), and the tail factors
-        (:func:`.tail.fitted_tail_factors`): alerts are judged on ``d kappa``, so a metric whose
-        residuals are heavy-tailed, bursty or discrete is flagged at the target rate instead of
-        on every burst.
-        """
-        R = tracker.residuals(Z)
-        W = Z.shape[0]
-        mad = _robust_scale(R) * math.sqrt(W / max(W - tracker.rank, 1))
-        d = np.maximum(np.where(np.isfinite(mad) & (mad > 1e-9), mad, 1.0), floor)
-        return d, fitted_tail_factors(R / d, false_alarm, threshold_for(false_alarm))
 
     @property
     def alert_scale(self) -> np.ndarray:
@@ -403,8 +258,7 @@ class EntityDetector:
         alert_scale = self.alert_scale
         units = BatchUnits(U, norm.loc, norm.scale, norm.log_mask, alert_scale, self.admitted)
         B, n = X.shape
-        Z = norm.transform(X)
-        np.clip(Z, -self.Z_LIMIT, self.Z_LIMIT, out=Z)   # NaN (missing) stays NaN
+        Z = units.normalise(X)   # clipped; NaN (missing) stays NaN
         present = np.isfinite(Z)
         modelled = self.admitted                       # metrics the baseline knows
         settled = norm.count >= cfg.min_samples        # their units are fixed (see _fold_in)
@@ -507,42 +361,24 @@ class EntityDetector:
         """``(A, columns)``: the scored dictionary columns ``columns`` (q,) and ``A`` (n, q), the
         matching columns of ``D^-1 P Phi C`` (``D``: residual scales, ``C``: column scales), so that
         a shift of one residual sigma on a column is a unit coefficient of ``Y ~ A X`` with the
-        rows of :meth:`BatchResult.window_residuals`.
+        rows of :meth:`.batch_result.BatchResult.window_residuals` (:func:`.window.window_dictionary`).
 
         Built with the current basis: the window's rows were projected with their own batch's
         basis, which rotates slowly (a halflife of ``baseline_halflife`` samples), so over a
         window of ~100 samples the two differ by little.
         """
         columns = np.flatnonzero(self.scored_columns())
-        U, d = self.baseline.U, self.alert_scale
-        phi = np.eye(self.n_metrics) if self.phi is None else self.phi
-        Phi = phi[:, columns] * column_scales(d, self.phi)[columns]
-        return (Phi - U @ (U.T @ Phi)) / d[:, None], columns
+        return window_dictionary(self.baseline.U, self.alert_scale, self.phi, columns), columns
 
     def localise_window(self, Y: np.ndarray, *, tol: float = 1e-4, max_iter: int = 300) -> WindowLocalisation:
         """Which columns moved together over the window ``Y`` (L, n) of
-        :meth:`BatchResult.window_residuals` rows: the row-sparse group LASSO with
-        ``lam = window_threshold(false_alarm, L)``, and M-SBL with noise variance 1 (the
-        residuals are in residual sigmas, so no ``lam`` and no noise to learn).
-
-        ``tol``/``max_iter`` bound both solvers; M-SBL's EM is the slow one (at n = 200 and 120
-        rows, ~30 iterations and ~36 ms at tol 1e-4, ~500 and ~0.8 s at 1e-6, same top ranks).
-        """
+        :meth:`.batch_result.BatchResult.window_residuals` rows (:func:`.window.localise_window`,
+        at this detector's ``false_alarm``)."""
         Y = np.asarray(Y, dtype=float)
         if Y.ndim != 2 or Y.shape[1] != self.n_metrics or Y.shape[0] == 0:
             raise ValueError(f"expected Y (L >= 1, {self.n_metrics}), got {Y.shape}")
         A, columns = self.window_dictionary()
-        lam = window_threshold(self.config.false_alarm, Y.shape[0])
-        # M-SBL's cost per iteration grows with the columns it keeps, and EM shrinks the gammas of
-        # columns without signal only slowly: it starts from the WINDOW_CANDIDATES columns most
-        # correlated with the window (sure independence screening, Fan & Lv 2008) and never
-        # revives the others (zero gammas stay pruned). Rankings go no deeper than the top ten.
-        correlation = np.linalg.norm(A.T @ Y.T, axis=1)
-        candidates = np.argsort(-correlation, kind="stable")[: self.WINDOW_CANDIDATES]
-        return WindowLocalisation(columns,
-                                  group_lasso_mmv(A, Y.T, lam, tol=tol, max_iter=max_iter),
-                                  msbl(A, Y.T, noise_var=1.0, tol=tol, max_iter=max_iter, candidates=candidates),
-                                  lam, Y.shape[0])
+        return localise_window(A, columns, Y, self.config.false_alarm, tol=tol, max_iter=max_iter)
 
     def _learn(self, cleaned: np.ndarray, present: np.ndarray, mask: np.ndarray | None, effect: np.ndarray,
                coords: np.ndarray, squares: np.ndarray, support: np.ndarray, selected: np.ndarray,
@@ -565,42 +401,21 @@ class EntityDetector:
                 self.warm_start[t.metrics] = 0.0
 
     def _fold_in(self, Z: np.ndarray, learning: np.ndarray, coords: np.ndarray) -> None:
-        """Learn a late metric's baseline loadings by regression on the baseline coordinates while
-        it is on probation, then fold them into the basis when it enters the model.
-
-        Probation starts once the metric's normaliser has settled (fixed units) and lasts
-        ``min_samples`` samples.  Entering with zero loadings would make its whole shared
-        movement look like a shift, and the basis would swing to absorb it, disturbing every
-        other metric's prediction.
-        """
-        cfg = self.config
-        for j in np.flatnonzero(learning.any(axis=0)):
-            rows = learning[:, j]
-            w, z = coords[rows], Z[rows, j]
-            stats = self._probation.setdefault(int(j), [0.0, 0.0, 0.0, 0])
-            stats[0] = stats[0] + w.T @ w
-            stats[1] = stats[1] + w.T @ z
-            stats[2] += float(z @ z)
-            stats[3] += int(rows.sum())
-        ready = [j for j, stats in self._probation.items() if stats[3] >= cfg.min_samples]
-        if not ready:
+        """Feed the samples of metrics on probation (:mod:`.probation`) and fold the loadings of
+        those it releases into the basis.  Probation starts once the metric's normaliser has
+        settled (fixed units) and lasts ``min_samples`` samples."""
+        self.probation.add(Z, learning, coords)
+        ready, loadings, scales = self.probation.graduate(self.config.min_samples)
+        if not ready.size:
             return
-        loadings, scales = [], []
-        for j in ready:
-            ww, wz, zz, k = self._probation.pop(j)
-            u = np.linalg.lstsq(ww + 1e-9 * np.eye(len(wz)), wz, rcond=None)[0]
-            rss = max(zz - 2.0 * u @ wz + u @ ww @ u, 0.0)
-            loadings.append(u)
-            scales.append(math.sqrt(rss / max(k - len(u), 1)) or 1.0)
-        ready = np.array(ready)
         # Express the newcomer in units where its residual scale is the entity's typical one, so
         # its own noise has no more energy than another metric's and cannot claim a direction.
         typical = float(np.median(np.delete(self.residual_scale, ready))) if ready.size < self.n_metrics else 1.0
-        factor = np.array(scales) / typical
+        factor = scales / typical
         units = np.ones(self.n_metrics)
         units[ready] = factor
         self.normaliser.rescale(units)
-        self.baseline.set_rows(ready, np.array(loadings) / factor[:, None])
+        self.baseline.set_rows(ready, loadings / factor[:, None])
         self.residual_scale = self.residual_scale.copy()   # replaced, not mutated: see BatchUnits
         self.residual_scale[ready] = typical
         self.tail_factor = self.tail_factor.copy()

@@ -271,3 +271,16 @@ class RobustNormaliser:
         """Retain only the metrics at ``index`` (drops vanished metrics)."""
         for name in self.PER_METRIC:
             setattr(self, name, getattr(self, name)[index])
+
+    def to_state(self) -> dict[str, np.ndarray]:
+        """What the normaliser has learned: its per-metric arrays (the settings are not state)."""
+        return {name: getattr(self, name) for name in self.PER_METRIC}
+
+    @classmethod
+    def from_state(cls, state: dict[str, np.ndarray], *, halflife: float = 1440.0, min_scale: float = 1e-9,
+                   settle: int = 30) -> RobustNormaliser:
+        """Inverse of :meth:`to_state`, with the settings of the constructor."""
+        norm = cls(state["log_mask"], halflife=halflife, min_scale=min_scale, settle=settle)
+        for name in cls.PER_METRIC[1:]:
+            setattr(norm, name, state[name])
+        return norm

@@ -193,6 +193,18 @@ class SubspaceTracker:
         U[metrics] = loadings
         self._refactor(U)
 
+    def to_state(self) -> dict[str, np.ndarray]:
+        """What the tracker has learned: the basis ``U`` (n, r) and its ``singular_values`` (r,)."""
+        return {"U": self.U, "singular_values": self.singular_values}
+
+    @classmethod
+    def from_state(cls, state: dict[str, np.ndarray], *, rank: int | None = None, energy: float = DEFAULT_ENERGY,
+                   max_rank: int = DEFAULT_MAX_RANK, halflife: float = DEFAULT_HALFLIFE) -> SubspaceTracker:
+        """Inverse of :meth:`to_state`, with the settings of the constructor."""
+        tracker = cls(rank=rank, energy=energy, max_rank=max_rank, halflife=halflife)
+        tracker.U, tracker.singular_values = state["U"], state["singular_values"]
+        return tracker
+
     def _refactor(self, U: np.ndarray) -> None:
         left, sv, _ = np.linalg.svd(U * self.singular_values, full_matrices=False)
         self.U = left

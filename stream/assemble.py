@@ -11,6 +11,7 @@ names absent for ``drop_after`` samples are dropped once they are quiet.
 from __future__ import annotations
 
 import fnmatch
+import math
 import re
 from dataclasses import dataclass
 
@@ -90,6 +91,33 @@ class EntityStream:
         self.last_ts = float("-inf")
         self.last_residual_norm: float | None = None
         self.labels: dict[str, str] = {}
+
+    def to_state(self) -> dict:
+        """Everything the stream holds, as plain values and numpy arrays (the detector's under
+        ``detector``, :meth:`EntityDetector.to_state`).  ``rules`` and the detector's settings are
+        not state; the name index and the layout cache are derived.  ``last_ts`` and
+        ``last_residual_norm`` are None when unknown (before the first vector or batch)."""
+        return {"entity": self.entity, "names": list(self.names), "group_labels": list(self.group_labels),
+                "labels": dict(self.labels), "last_ts": _finite_or_none(self.last_ts),
+                "last_residual_norm": _finite_or_none(self.last_residual_norm),
+                "ignored_metrics": self.ignored_metrics, "last_seen": self._last_seen,
+                "detector": self.detector.to_state()}
+
+    @classmethod
+    def from_state(cls, state: dict, rules: MetricRules, config: DetectorConfig) -> EntityStream:
+        """Inverse of :meth:`to_state`, with today's ``rules`` and detector settings ``config``."""
+        stream = cls(state["entity"], rules, config)
+        stream.detector = EntityDetector.from_state(state["detector"], config)
+        stream.names = list(state["names"])
+        stream.index = {name: i for i, name in enumerate(stream.names)}
+        stream.group_labels = list(state["group_labels"])
+        stream._last_seen = state["last_seen"]
+        stream.ignored_metrics = state["ignored_metrics"]
+        stream.last_ts = float("-inf") if state["last_ts"] is None else float(state["last_ts"])
+        residual_norm = state["last_residual_norm"]
+        stream.last_residual_norm = None if residual_norm is None else float(residual_norm)
+        stream.labels = dict(state["labels"])
+        return stream
 
     def assemble(self, vectors: list[Vector]) -> tuple[np.ndarray, np.ndarray]:
         """Dense ``X`` (B, n) and ``ts`` (B,) for a batch of this entity's vectors, in order.
@@ -179,3 +207,7 @@ class EntityStream:
             self._last_seen = self._last_seen[keep]
             self._positions.clear()
             self._refresh_groups()
+
+
+def _finite_or_none(x: float | None) -> float | None:
+    return float(x) if x is not None and math.isfinite(x) else None

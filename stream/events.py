@@ -33,7 +33,7 @@ from shiftsieve.models.decision import Transition
 from shiftsieve.models.mmv import rank_rows
 
 if TYPE_CHECKING:
-    from shiftsieve.models.detector import WindowLocalisation
+    from shiftsieve.models.window import WindowLocalisation
 
     from .assemble import EntityStream
 

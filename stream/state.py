@@ -51,7 +51,6 @@ import dataclasses
 import hashlib
 import io
 import json
-import math
 import os
 import struct
 import tempfile
@@ -62,8 +61,7 @@ from typing import Any
 
 import numpy as np
 
-from shiftsieve.models.decision import _Incident
-from shiftsieve.models.detector import DetectorConfig, EntityDetector
+from shiftsieve.models.detector import DetectorConfig
 
 from .assemble import EntityStream, MetricRules
 
@@ -74,8 +72,6 @@ SNAPSHOT_VERSION = 2   # 2: normaliser.resolution and detector.tail_factor
 MAGIC = b"\x89SHSNAP\n"
 _PREFIX = struct.Struct(">8sHIQ")        # magic, version, metadata length, array archive length
 HEADER_SIZE = _PREFIX.size + 32          # + SHA-256
-
-_TRACKER_FIELDS = ("state", "history", "below", "firing_for", "peak_shift", "peak_value", "peak_expected")
 
 #: Every array of a snapshot: dtype and shape in the dimension symbols of the module docstring.
 _ARRAYS: dict[str, tuple[str, tuple[str, ...]]] = {
@@ -137,25 +133,19 @@ def snapshot_entity(stream: EntityStream, offsets: dict[str, int] | None = None)
     offsets = dict(offsets or {})
     if not all(isinstance(k, str) and type(v) is int and v >= 0 for k, v in offsets.items()):
         raise ValueError(f"offsets must map str to non-negative int, got {offsets!r}")
-    incident = stream.detector.tracker.incident
+    state = stream.to_state()
+    detector = state["detector"]
     meta = {
         "version": SNAPSHOT_VERSION,
-        "entity": stream.entity,
-        "names": stream.names,
-        "group_labels": stream.group_labels,
-        "labels": dict(stream.labels),
-        "last_ts": _finite_or_none(stream.last_ts),
-        "last_residual_norm": _finite_or_none(stream.last_residual_norm),
-        "ignored_metrics": stream.ignored_metrics,
-        "samples": stream.detector.samples,
+        **{key: state[key] for key in ("entity", "names", "group_labels", "labels", "last_ts", "last_residual_norm",
+                                       "ignored_metrics")},
+        "samples": detector["samples"],
         "offsets": offsets,
-        "incident": None if incident is None else {"onset_ts": incident.onset_ts,
-                                                   "members": sorted(incident.members),
-                                                   "resolved": sorted(incident.resolved)},
+        "incident": detector["tracker"]["incident"],
         "settings": _settings(stream.detector.config, stream.rules),
     }
     meta_bytes = json.dumps(meta, allow_nan=False, sort_keys=True, separators=(",", ":")).encode()
-    arrays = _arrays(stream)
+    arrays = _arrays(state)
     for key, (dtype, _) in _ARRAYS.items():   # plain dtypes only: nothing np.savez would pickle
         if arrays[key].dtype != np.dtype(dtype):
             raise ValueError(f"{key} is {arrays[key].dtype}, the format says {dtype}")
@@ -166,41 +156,24 @@ def snapshot_entity(stream: EntityStream, offsets: dict[str, int] | None = None)
     return prefix + hashlib.sha256(prefix + payload).digest() + payload
 
 
-def _finite_or_none(x: float | None) -> float | None:
-    return float(x) if x is not None and math.isfinite(x) else None
-
-
 def _settings(config: DetectorConfig, rules: MetricRules) -> dict:
     """The configuration as plain JSON values (tuples become lists), as stored and compared."""
     return json.loads(json.dumps({"detector": dataclasses.asdict(config), "rules": dataclasses.asdict(rules)}))
 
 
-def _arrays(stream: EntityStream) -> dict[str, np.ndarray]:
-    det = stream.detector
-    norm, base, tracker = det.normaliser, det.baseline, det.tracker
-    probation = det._probation
-    s = len(next(iter(probation.values()))[1]) if probation else base.rank
-    q = len(probation)
-    groups = [np.asarray(g, dtype=np.int64) for g in det.groups]
-    arrays = {
-        "normaliser.log_mask": norm.log_mask, "normaliser.loc": norm.loc, "normaliser.scale": norm.scale,
-        "normaliser.count": norm.count, "normaliser.resolution": norm.resolution,
-        "baseline.U": base.U, "baseline.singular_values": base.singular_values,
-        "detector.residual_scale": det.residual_scale, "detector.tail_factor": det.tail_factor,
-        "detector.admitted": det.admitted,
-        "detector.warm_start": det.warm_start,
-        "detector.warmup_rows": np.array(det._warmup_rows, dtype=float).reshape(len(det._warmup_rows), det.n_metrics),
-        "detector.group_members": np.concatenate(groups) if groups else np.zeros(0, np.int64),
-        "detector.group_sizes": np.array([g.size for g in groups], dtype=np.int64),
-        "probation.metric": np.array(list(probation), dtype=np.int64),
-        "probation.ww": np.array([v[0] for v in probation.values()], dtype=float).reshape(q, s, s),
-        "probation.wz": np.array([v[1] for v in probation.values()], dtype=float).reshape(q, s),
-        "probation.zz": np.array([v[2] for v in probation.values()], dtype=float),
-        "probation.count": np.array([v[3] for v in probation.values()], dtype=np.int64),
-        "stream.last_seen": stream._last_seen,
-    }
-    arrays.update((f"tracker.{name}", getattr(tracker, name)) for name in _TRACKER_FIELDS)
-    return arrays
+def _arrays(state: dict) -> dict[str, np.ndarray]:
+    """The arrays of a stream's :meth:`EntityStream.to_state` under their snapshot names (the rest,
+    such as the incident and the sample count, is metadata)."""
+    detector = state["detector"]
+    groups = detector["groups"]
+    arrays = {f"{part}.{name}": value for part in ("normaliser", "baseline", "probation", "tracker")
+              for name, value in detector[part].items()}
+    arrays.update((f"detector.{name}", detector[name])
+                  for name in ("residual_scale", "tail_factor", "admitted", "warm_start", "warmup_rows"))
+    arrays["detector.group_members"] = np.concatenate(groups) if groups else np.zeros(0, np.int64)
+    arrays["detector.group_sizes"] = np.array([g.size for g in groups], dtype=np.int64)
+    arrays["stream.last_seen"] = state["last_seen"]
+    return {key: arrays[key] for key in _ARRAYS}
 
 
 # -- reading --------------------------------------------------------------------------------------
@@ -346,36 +319,24 @@ def _build(meta: dict, arrays: dict[str, np.ndarray], rules: MetricRules,
     if incident is not None:
         if not isinstance(incident, dict) or type(incident.get("onset_ts")) not in (int, float):
             raise SnapshotError("metadata 'incident' is invalid")
-        incident = _Incident(float(incident["onset_ts"]), _indices(incident.get("members"), "incident members", n + g),
-                             _indices(incident.get("resolved"), "resolved metrics", n + g))
+        incident = {"onset_ts": float(incident["onset_ts"]),
+                    "members": sorted(_indices(incident.get("members"), "incident members", n + g)),
+                    "resolved": sorted(_indices(incident.get("resolved"), "resolved metrics", n + g))}
 
-    det = EntityDetector(n, arrays["normaliser.log_mask"], config, groups)
-    det.normaliser.loc, det.normaliser.scale = arrays["normaliser.loc"], arrays["normaliser.scale"]
-    det.normaliser.count, det.normaliser.resolution = arrays["normaliser.count"], arrays["normaliser.resolution"]
-    det.baseline.U, det.baseline.singular_values = arrays["baseline.U"], arrays["baseline.singular_values"]
-    det.residual_scale, det.admitted = arrays["detector.residual_scale"], arrays["detector.admitted"]
-    det.tail_factor = arrays["detector.tail_factor"]
-    det.warm_start = arrays["detector.warm_start"]
-    det._warmup_rows = list(rows)
-    det._probation = {int(j): [ww, wz, float(zz), int(k)] for j, ww, wz, zz, k in
-                      zip(on_probation, arrays["probation.ww"], arrays["probation.wz"], arrays["probation.zz"],
-                          arrays["probation.count"])}
-    det.samples = samples
-    for name in _TRACKER_FIELDS:
-        setattr(det.tracker, name, arrays[f"tracker.{name}"])
-    det.tracker.incident = incident
+    detector = _part(arrays, "detector")
+    del detector["group_members"], detector["group_sizes"]
+    detector.update({part: _part(arrays, part) for part in ("normaliser", "baseline", "probation", "tracker")},
+                    groups=groups, samples=samples)
+    detector["tracker"]["incident"] = incident
+    state = {"entity": entity, "names": names, "group_labels": group_labels, "labels": labels, "last_ts": last_ts,
+             "last_residual_norm": residual_norm, "ignored_metrics": ignored, "last_seen": arrays["stream.last_seen"],
+             "detector": detector}
+    return EntityStream.from_state(state, rules, config), offsets
 
-    stream = EntityStream(entity, rules, config)
-    stream.detector = det
-    stream.names = names
-    stream.index = {name: i for i, name in enumerate(names)}
-    stream.group_labels = group_labels
-    stream._last_seen = arrays["stream.last_seen"]
-    stream.ignored_metrics = ignored
-    stream.last_ts = float("-inf") if last_ts is None else float(last_ts)
-    stream.last_residual_norm = None if residual_norm is None else float(residual_norm)
-    stream.labels = labels
-    return stream, offsets
+
+def _part(arrays: dict[str, np.ndarray], part: str) -> dict[str, np.ndarray]:
+    """The arrays named ``part.field``, by field."""
+    return {key[len(part) + 1:]: value for key, value in arrays.items() if key.startswith(part + ".")}
 
 
 def _differences(old: Any, new: Any, key: str = "") -> list[tuple[str, Any, Any]]:

@@ -14,7 +14,7 @@ from shiftsieve.models.baselines import (
     pcp_calibrated,
     pcp_detect,
 )
-from shiftsieve.models.detector import threshold_for
+from shiftsieve.models.thresholds import threshold_for
 
 
 def _reference_ewma(x, alpha):

@@ -5,8 +5,8 @@ import importlib
 
 import pytest
 
-MODULES = ["normaliser", "subspace", "validation", "projection", "shrinkage", "lasso", "refit", "decision", "detector",
-           "dictionary", "mmv", "pcp", "baselines"]
+MODULES = ["normaliser", "subspace", "validation", "projection", "shrinkage", "lasso", "refit", "thresholds",
+           "decision", "probation", "window", "detector", "dictionary", "mmv", "pcp", "baselines"]
 
 
 @pytest.mark.parametrize("name", MODULES)

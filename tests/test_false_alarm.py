@@ -4,7 +4,8 @@ import numpy as np
 import pytest
 from scipy.stats import binom
 
-from shiftsieve.models.detector import DetectorConfig, EntityDetector, threshold_for, truncated_second_moment
+from shiftsieve.models.detector import DetectorConfig, EntityDetector
+from shiftsieve.models.thresholds import threshold_for, truncated_second_moment
 
 
 def null_stream(seed, n=50, r=3, samples=6000):

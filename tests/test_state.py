@@ -67,7 +67,7 @@ def situation(stream):
     """The states a restore must survive, as seen at a cut point."""
     det = stream.detector
     return {"warming_up": det.warming_up, "firing": bool((det.tracker.state == FIRING).any()),
-            "late_metric": LATE in stream.names, "probation": bool(det._probation),
+            "late_metric": LATE in stream.names, "probation": bool(len(det.probation)),
             "group_column": bool(det.groups), "gone_dropped": det.samples > 0 and GONE not in stream.names}
 
 
@@ -103,15 +103,15 @@ def full_state(stream):
     det = stream.detector
     out = {}
     for prefix, obj in (("stream", stream), ("detector", det), ("normaliser", det.normaliser),
-                        ("baseline", det.baseline), ("tracker", det.tracker)):
+                        ("baseline", det.baseline), ("tracker", det.tracker), ("probation", det.probation)):
         for key, value in vars(obj).items():
-            if key in ("detector", "normaliser", "baseline", "tracker", "_positions"):
+            if key in ("detector", "normaliser", "baseline", "tracker", "probation", "_positions"):
                 continue
             out[f"{prefix}.{key}"] = value
     out["detector._warmup_rows"] = np.array(out["detector._warmup_rows"])
     out["detector.groups"] = [g.tolist() for g in det.groups]
-    out["detector._probation"] = {j: [np.asarray(v[0]), np.asarray(v[1]), v[2], v[3]]
-                                  for j, v in det._probation.items()}
+    out["probation.sums"] = {j: [np.asarray(v[0]), np.asarray(v[1]), v[2], v[3]]
+                             for j, v in det.probation.sums.items()}
     return out
 
 
@@ -167,15 +167,16 @@ def test_every_attribute_is_saved_or_derived():
         "stream": {"entity", "rules", "names", "index", "detector", "group_labels", "_positions", "_last_seen",
                    "ignored_metrics", "last_ts", "last_residual_norm", "labels"},
         "detector": {"config", "lam", "_scale_decay", "normaliser", "baseline", "tracker",
-                     "residual_scale", "tail_factor", "warm_start", "groups", "phi", "_lipschitz", "_warmup_rows", "_probation",
+                     "residual_scale", "tail_factor", "warm_start", "groups", "phi", "_lipschitz", "_warmup_rows", "probation",
                      "admitted", "samples"},
+        "probation": {"sums"},
         "normaliser": {"log_mask", "halflife", "decay", "min_scale", "settle", "loc", "scale", "count", "resolution"},
         "baseline": {"fixed_rank", "energy", "max_rank", "decay", "U", "singular_values"},
         "tracker": {"config", "_window_mask", "state", "history", "below", "firing_for", "peak_shift",
                     "peak_value", "peak_expected", "incident"},
     }
     for name, obj in (("stream", stream), ("detector", det), ("normaliser", det.normaliser),
-                      ("baseline", det.baseline), ("tracker", det.tracker)):
+                      ("baseline", det.baseline), ("tracker", det.tracker), ("probation", det.probation)):
         assert set(vars(obj)) == saved_or_derived[name], name
 
 

@@ -34,7 +34,7 @@ from typing import TYPE_CHECKING, Sequence
 
 import numpy as np
 
-from shiftsieve.models.detector import BatchResult
+from shiftsieve.models.batch_result import BatchResult
 from shiftsieve.models.normaliser import to_metric_units
 
 if TYPE_CHECKING:
