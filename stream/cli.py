@@ -24,8 +24,9 @@ import orjson
 
 from .config import ENCODINGS, ConfigError, load_config, render
 from .demo import DEFAULT_SCENARIO
-from .evaluate import EvaluationError, evaluate, format_table, load_events, load_labels
-from .readers import InputError
+from .labels import EvaluationError, load_labels
+from .scoring import format_table, load_events, score_events
+from .lines import InputError
 from .replay import replay
 from .report import ReportError
 
@@ -116,7 +117,7 @@ def _parser() -> argparse.ArgumentParser:
 
 
 def _evaluate(args: argparse.Namespace) -> int:
-    from .compare import compare_methods, format_comparison, input_timestamps, parse_methods
+    from .evaluate import compare_methods, format_comparison, input_timestamps, parse_methods
     if args.events is not None:
         if len(args.paths) not in (1, 2) or args.methods or (args.config and len(args.paths) == 1):
             raise EvaluationError("evaluate --events takes EVENTS [INPUT] LABELS (no --methods; --config only "
@@ -126,7 +127,7 @@ def _evaluate(args: argparse.Namespace) -> int:
         vectors = args.vectors
         if vectors is None and timestamps is not None:
             vectors = sum(ts.size for ts in timestamps.values())
-        result = evaluate(events, labels, vectors=vectors, timestamps=timestamps)
+        result = score_events(events, labels, vectors=vectors, timestamps=timestamps)
         print(orjson.dumps(result.to_dict(), option=orjson.OPT_INDENT_2).decode() if args.json
               else format_table(result))
         return 0

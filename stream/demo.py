@@ -9,8 +9,9 @@ from pathlib import Path
 from typing import TextIO
 
 from .config import Config
-from .evaluate import evaluate, format_table, load_labels
-from .readers import InputError
+from .labels import load_labels
+from .scoring import format_table, score_events
+from .lines import InputError
 from .replay import replay
 from .timefmt import human_duration
 
@@ -88,6 +89,6 @@ def run_demo(name: str, config: Config, *, events_path: str | None = None, out: 
     for event in sorted(events, key=lambda e: e["ts"]):   # entities are processed batch by batch
         print(format_event(event) + "\n", file=out)
     print("Against the labelled truth:", file=out)
-    print(format_table(evaluate(events, labels, vectors=summary.vectors)), file=out)
+    print(format_table(score_events(events, labels, vectors=summary.vectors)), file=out)
     print("\nAlerts inform on-call engineers; they do not replace their judgement.", file=out)
     return 0

@@ -1,559 +1,338 @@
-"""Score alert events against incident labels, as on-call engineers and the literature read them.
+"""Compare shiftsieve with the detectors practitioners use, on the same input and labels.
 
-Why incident level: an operator acts on incidents, not on samples, so the main
-scores count how many labelled faults were found, how many pages were false,
-how fast and how well the culprit metrics were named.
+``shiftsieve evaluate INPUT LABELS [--methods a,b]`` loads the replay input once,
+runs each method on it, scores its alert events with :func:`.scoring.score_events`
+and prints one table.  The methods (:mod:`shiftsieve.models.baselines`):
 
-- A *predicted incident* is one distinct ``incident`` id that has at least one
-  ``firing`` event: its entity, its onset (first firing ts), its metrics (union
-  over its firing events; each metric keeps its largest |shift_sigma|, ranked by
-  that, descending, ties by name), the joint-window rankings of the last of its
-  events that carries ``window_metrics`` (the longest window) and its span:
-  ``[onset, ts of its last event]`` when that event is ``resolved``/``adapted``,
-  else open to the end of the input.
-- *Scored* predictions: onset at or after the entity's ``scored_from`` (labels;
-  entities not listed are scored throughout).  The others (``unscored``) are
-  neither detections nor false alerts: published sets label only a test part.
-- Matching: scored predictions in onset order; each takes the earliest-starting
-  label still free on its entity whose window ``[start - tolerance, end]`` holds
-  its onset (so each label and each prediction is matched at most once).
-- *Fragments*: scored predictions that match no free label but whose onset lies
-  in an already matched label's window -- a detector splitting one fault into
-  several onsets.  They are neither detections nor false alerts, counted apart.
-  Every other scored prediction is a *false alert*.
-- precision = matched / (matched + false alerts), recall = matched / labelled,
-  F1 their harmonic mean.  Conventions: nothing scored -> precision 1.0 (nothing
-  false was claimed); no labels -> recall 1.0; P + R = 0 -> F1 0.  So a silent
-  detector on a file without labels scores 1.0 / 1.0 / 1.0.
-- localisation: for a matched label with k true metrics, the share of them among
-  the top-k metrics of its prediction; mean over matches (None if none).  It is
-  HitRate@100% of the ``metrics`` ranking, under its older name.
-- delay: onset - start over matches, in seconds (mean, median, max; None if no
-  match) and, with the labels' ``step_seconds``, the median in steps.  It can be
-  negative, down to -tolerance.
-- false alerts per 10,000 vectors: false alerts * 10000 / vectors.  Per
-  entity-day: false alerts / scored entity-days, an entity's scored days being
-  its vectors at or after ``scored_from`` times the step (``step_seconds``, else
-  the entity's median spacing) / 86400.  Needs the input's timestamps.
-- HitRate@100% and @150% (:mod:`.literature`): per match, on each ranking of the
-  prediction's metrics: ``metrics`` (by peak |shift_sigma|, every prediction) and, when its
-  events carry ``window_metrics``, ``group_lasso`` and ``msbl``; mean over the matches
-  that carry the ranking.
-- Point-adjusted precision, recall and F1 (:mod:`.literature`; the published papers'
-  convention, which inflates scores: reported only to compare with them): point-wise over
-  each entity's scored vectors; a vector is alerted when it lies in a prediction's span,
-  labelled when it lies in a label's ``[start, end]``.  Needs the input's timestamps.
+- ``shiftsieve``: the engine, exactly as ``shiftsieve replay`` runs it;
+- ``ewma_zscore``: per-metric exponentially weighted z-score, Gaussian threshold;
+- ``ewma_zscore_calibrated``: the same, each metric's threshold set on its own history;
+- ``halfspacetrees``: river's ``HalfSpaceTrees`` on whole vectors (incident level
+  only: its events name no metric, localisation and HitRate are n/a);
+- ``pcp``: batch Principal Component Pursuit of each entity's whole matrix (offline),
+  one threshold pooled over the warm-up;
+- ``pcp_calibrated``: the same decomposition, each metric's threshold set on its own history.
 
-Labels (:func:`load_labels`): the format of ``replay_data/*.labels.json``
-(schema in ``shiftsieve.replay_data.generate``) with three optional keys:
-``step_seconds`` (the input's sampling step), ``tolerance_steps`` (the match
-tolerance in steps, needs ``step_seconds``; without it the tolerance is
-``DEFAULT_TOLERANCE_SECONDS``) and ``scored_from`` ({entity: epoch seconds}).
-
-Bad input raises `EvaluationError` whose message is one line naming the file
-and line (or the event index for events passed in directly).
+All use the configured warm-up, ``model.false_alarm``, ``model.log_metrics`` and
+decision layer (``[decision]``): the baselines' flags go through the same
+:class:`~shiftsieve.models.decision.AlertTracker` and become alert events with
+:mod:`.events`, so they are scored exactly like shiftsieve's.  An entity's
+*history*, for the calibrated methods, is its vectors before the labels'
+``scored_from`` (what a practitioner has before going live), or its warm-up when
+that is longer or there is none.  ``seconds`` and ``vectors/s`` are the wall clock
+of the method alone (model, decision, events), not of loading.
 """
 
 from __future__ import annotations
 
-import math
-from dataclasses import dataclass, field
+import time
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Mapping, Sequence
+from typing import Callable, Sequence
 
 import numpy as np
-import orjson
 
-from .literature import covered, hit_rate, point_adjust
+from shiftsieve.models.baselines import (
+    EWMAZScore,
+    Flags,
+    HalfSpaceTreesDetector,
+    ewma_zscore_calibrated,
+    pcp_calibrated,
+    pcp_detect,
+)
+from shiftsieve.models.decision import AlertTracker
+from shiftsieve.models.normaliser import log_scaled, symexp
 
-DEFAULT_TOLERANCE_SECONDS = 120.0  # onsets a few steps early still count: label edges are one step coarse
-STATES = frozenset({"firing", "resolved", "adapted"})
-WINDOW_RANKINGS = ("group_lasso", "msbl")          # the joint-window rankings of ``window_metrics``
-RANKINGS = ("metrics", *WINDOW_RANKINGS)           # what HitRate is computed on
-HIT_RATE_PERCENTS = (100, 150)
-SECONDS_PER_DAY = 86400.0
+from .assemble import EntityStream
+from .config import Config
+from .decode import Vector
+from .engine import Engine
+from .events import events_from_transitions
+from .labels import EvaluationError, Labels
+from .lines import InputError, Rejected
+from .replay import open_input
+from .scoring import Evaluation, score_events
 
+METHODS = ("shiftsieve", "ewma_zscore", "ewma_zscore_calibrated", "halfspacetrees", "pcp", "pcp_calibrated")
+LOCALISES = {"shiftsieve": True, "ewma_zscore": True, "ewma_zscore_calibrated": True, "halfspacetrees": False,
+             "pcp": True, "pcp_calibrated": True}
 
-class EvaluationError(Exception):
-    """Unusable evaluation input; the message is one line naming the file and line."""
+#: Half-life of the EWMA z-score, in samples (30 min at the demo's 30 s step): short enough to
+#: follow the demo's daily traffic swing, as a per-metric threshold must to be usable at all
+#: (at shiftsieve's own normaliser half-life, 1440, the daily swing alone fires every metric).
+EWMA_HALFLIFE = 60.0
+#: Seed of the HalfSpaceTrees' random splits (replays must be reproducible).
+HST_SEED = 42
+#: The EWMA walks many entities' metrics side by side (one Python step per row for all of them);
+#: entities are stacked in groups of at most this many matrix cells (~32 MB per float array).
+STACK_CELLS = 1 << 22
 
 
 @dataclass(frozen=True)
-class LabelledIncident:
-    """One labelled fault: entity, window [start, end] (epoch s), the shifted metrics."""
+class MethodScore:
+    """One row of the comparison: a method, its scores and its speed."""
+
+    method: str            # one of METHODS
+    localises: bool
+    evaluation: Evaluation
+    vectors_per_second: float
+    seconds: float = 0.0   # wall clock of the method alone
+
+    def to_dict(self) -> dict:
+        return {"method": self.method, "localises": self.localises, "seconds": self.seconds,
+                "vectors_per_second": self.vectors_per_second, **self.evaluation.to_dict()}
+
+
+@dataclass
+class _Entity:
+    stream: EntityStream   # names and the column -> name mapping used by the events
+    X: np.ndarray          # (T, n) raw values, NaN = missing
+    ts: np.ndarray
+    log_mask: np.ndarray
+    warmup: int            # rows before the first scored one: min(model.warmup, T)
+    history: int           # rows the calibrated methods calibrate on (module docstring)
+
+
+@dataclass(frozen=True)
+class _WholeVector:
+    """What the events need of an entity for a detector with one whole-vector column."""
 
     entity: str
-    start: float
-    end: float
-    metrics: tuple[str, ...]
-    shift_sigma: dict[str, float]
-    kind: str
-
-
-@dataclass(frozen=True)
-class Labels:
-    """The labels file of one replay input: scenario name, vector count, incidents, how to score them."""
-
-    scenario: str
-    vectors: int
-    incidents: tuple[LabelledIncident, ...]
-    description: str = ""
-    surges: tuple[tuple[float, float], ...] = ()   # benign traffic surges (start, end): no fault, no alert due
-    step_seconds: float | None = None             # the input's sampling step
-    tolerance_steps: int | None = None            # None: DEFAULT_TOLERANCE_SECONDS
-    scored_from: Mapping[str, float] = field(default_factory=dict)   # entity -> first scored ts
+    names: tuple[str, ...] = ("anomaly_score",)
 
     @property
-    def tolerance_seconds(self) -> float:
-        """How early an onset may come and still detect a label."""
-        if self.tolerance_steps is None or self.step_seconds is None:
-            return DEFAULT_TOLERANCE_SECONDS
-        return self.tolerance_steps * self.step_seconds
-
-    def scored_after(self, entity: str) -> float:
-        """The entity's first scored ts (-inf: scored throughout)."""
-        return self.scored_from.get(entity, -math.inf)
+    def column_names(self) -> list[str]:
+        return list(self.names)
 
 
-@dataclass(frozen=True)
-class PredictedIncident:
-    """One incident id from the events: entity, onset, (metric, max |shift_sigma|) ranked, span, window rankings."""
-
-    incident: str
-    entity: str
-    onset: float
-    metrics: tuple[tuple[str, float], ...]
-    closed: float = math.inf                      # ts of its closing resolved/adapted event (inf: still open)
-    window: Mapping[str, tuple[str, ...]] = field(default_factory=dict)   # group_lasso / msbl -> names
-
-    def ranking(self, name: str) -> tuple[str, ...] | None:
-        """The metric names of ranking ``name`` (one of RANKINGS), best first; None if the events had none."""
-        return tuple(m for m, _ in self.metrics) if name == "metrics" else self.window.get(name)
+def check_methods(names: Sequence[str]) -> list[str]:
+    """The method names, checked and deduplicated; raises EvaluationError naming the unknown ones."""
+    unknown = [name for name in names if name not in METHODS]
+    if unknown or not names:
+        raise EvaluationError(f"unknown method {', '.join(unknown) or '(none given)'}; "
+                              f"choose from {', '.join(METHODS)}")
+    return list(dict.fromkeys(names))
 
 
-@dataclass(frozen=True)
-class Match:
-    """A labelled incident and the prediction that found it."""
-
-    label: LabelledIncident
-    predicted: PredictedIncident
-    delay_seconds: float
-    localisation: float
-    hit_rates: Mapping[str, tuple[float, ...]] = field(default_factory=dict)   # ranking -> per HIT_RATE_PERCENTS
+def parse_methods(text: str) -> list[str]:
+    """``"a,b"`` (the ``--methods`` option) -> the checked method names."""
+    return check_methods([name.strip() for name in text.split(",") if name.strip()])
 
 
-@dataclass(frozen=True)
-class HitRate:
-    """Mean HitRate@100% and @150% of one ranking over the ``matches`` that carry it."""
-
-    at_100: float
-    at_150: float
-    matches: int
-
-
-@dataclass(frozen=True)
-class PointAdjusted:
-    """Point-adjusted scores (module docstring; the published convention, inflated) and their counts."""
-
-    precision: float
-    recall: float
-    f1: float
-    points: int            # scored vectors
-    labelled_points: int
-    alerted_points: int    # after adjustment
+def _load(path: str | Path, config: Config) -> list[Vector]:
+    """The input's valid vectors in file order (undecodable lines are skipped, as replay does)."""
+    with open_input(path, config) as records:
+        vectors = [r for r in records if not isinstance(r, Rejected)]
+    if not vectors:
+        raise InputError(f"{path}: no valid vector in the input")
+    return vectors
 
 
-@dataclass(frozen=True)
-class Evaluation:
-    """Scores of one events stream against one labels file."""
-
-    scenario: str
-    vectors: int
-    tolerance_seconds: float
-    labelled: int
-    predicted: tuple[PredictedIncident, ...]
-    matches: tuple[Match, ...]
-    missed: tuple[LabelledIncident, ...]
-    false_alerts: tuple[PredictedIncident, ...]
-    fragments: tuple[PredictedIncident, ...]
-    unscored: tuple[PredictedIncident, ...]
-    precision: float
-    recall: float
-    f1: float
-    localisation: float | None
-    delay_mean_seconds: float | None
-    delay_median_seconds: float | None
-    delay_max_seconds: float | None
-    false_alerts_per_10k: float
-    step_seconds: float | None = None
-    scored_entity_days: float | None = None
-    false_alerts_per_entity_day: float | None = None
-    hit_rate: Mapping[str, HitRate] = field(default_factory=dict)
-    point_adjusted: PointAdjusted | None = None
-
-    @property
-    def delay_median_steps(self) -> float | None:
-        """The median delay in sampling steps (None without a match or without ``step_seconds``)."""
-        if self.delay_median_seconds is None or not self.step_seconds:
-            return None
-        return self.delay_median_seconds / self.step_seconds
-
-    def to_dict(self) -> dict[str, Any]:
-        """Plain JSON-ready form (scores first, then the per-incident detail)."""
-        pa = self.point_adjusted
-        return {
-            "scenario": self.scenario, "vectors": self.vectors, "tolerance_seconds": self.tolerance_seconds,
-            "step_seconds": self.step_seconds,
-            "labelled": self.labelled, "predicted": len(self.predicted), "matched": len(self.matches),
-            "precision": self.precision, "recall": self.recall, "f1": self.f1,
-            "localisation": self.localisation,
-            "hit_rate": {name: {"at_100": h.at_100, "at_150": h.at_150, "matches": h.matches}
-                         for name, h in self.hit_rate.items()},
-            "delay_mean_seconds": self.delay_mean_seconds, "delay_median_seconds": self.delay_median_seconds,
-            "delay_median_steps": self.delay_median_steps, "delay_max_seconds": self.delay_max_seconds,
-            "false_alerts": len(self.false_alerts), "false_alerts_per_10k_vectors": self.false_alerts_per_10k,
-            "scored_entity_days": self.scored_entity_days,
-            "false_alerts_per_entity_day": self.false_alerts_per_entity_day,
-            "fragments": len(self.fragments), "unscored": len(self.unscored),
-            "point_adjusted": None if pa is None else {
-                "convention": "point-adjusted (Xu et al. 2018); inflates scores, for comparison with published "
-                              "figures only",
-                "precision": pa.precision, "recall": pa.recall, "f1": pa.f1, "points": pa.points,
-                "labelled_points": pa.labelled_points, "alerted_points": pa.alerted_points},
-            "matches": [{"entity": m.label.entity, "start": m.label.start, "end": m.label.end,
-                         "true_metrics": list(m.label.metrics), "incident": m.predicted.incident,
-                         "onset": m.predicted.onset, "delay_seconds": m.delay_seconds,
-                         "localisation": m.localisation,
-                         "hit_rate": {name: dict(zip(("at_100", "at_150"), rates))
-                                      for name, rates in m.hit_rates.items()},
-                         "reported_metrics": _metrics_dict(m.predicted)}
-                        for m in self.matches],
-            "missed": [{"entity": lab.entity, "start": lab.start, "end": lab.end, "metrics": list(lab.metrics)}
-                       for lab in self.missed],
-            "false_alert_incidents": [{"incident": p.incident, "entity": p.entity, "onset": p.onset,
-                                       "reported_metrics": _metrics_dict(p)} for p in self.false_alerts],
-            "fragment_incidents": [{"incident": p.incident, "entity": p.entity, "onset": p.onset}
-                                   for p in self.fragments],
-        }
+def _in_order(vectors: list[Vector]) -> dict[str, list[Vector]]:
+    """Per entity, its vectors with increasing ts (later-or-equal ts are refused, as the engine does)."""
+    by_entity: dict[str, list[Vector]] = {}
+    for v in vectors:
+        own = by_entity.setdefault(v.entity, [])
+        if not own or v.ts > own[-1].ts:
+            own.append(v)
+    return by_entity
 
 
-def _metrics_dict(p: PredictedIncident) -> dict[str, float]:
-    return {name: size for name, size in p.metrics}
+def _timestamps(by_entity: dict[str, list[Vector]]) -> dict[str, np.ndarray]:
+    return {entity: np.array([v.ts for v in own]) for entity, own in by_entity.items()}
 
 
-def _is_number(value: Any) -> bool:
-    return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
+def input_timestamps(path: str | Path, config: Config) -> dict[str, np.ndarray]:
+    """Per entity, the increasing timestamps of the input's vectors (for scoring an events file)."""
+    return _timestamps(_in_order(_load(path, config)))
 
 
-def _window_problem(window: Any) -> str | None:
-    """Why ``window_metrics`` is unusable, or None (only the rankings are read)."""
-    if not isinstance(window, dict):
-        return "'window_metrics' must be a JSON object"
-    for method in WINDOW_RANKINGS:
-        items = window.get(method, [])
-        if not isinstance(items, list) or not all(isinstance(i, dict) and isinstance(i.get("name"), str)
-                                                  and i["name"] for i in items):
-            return f"'window_metrics.{method}' must be a list of objects with a non-empty 'name'"
-    return None
-
-
-def _event_problem(obj: Any) -> str | None:
-    """Why `obj` is not a usable alert event, or None."""
-    if not isinstance(obj, dict):
-        return "not a JSON object"
-    if not _is_number(obj.get("ts")):
-        return "'ts' must be a finite number"
-    for key in ("entity", "incident"):
-        if not isinstance(obj.get(key), str) or not obj[key]:
-            return f"'{key}' must be a non-empty string"
-    if obj.get("state") not in STATES:
-        return f"'state' must be one of {', '.join(sorted(STATES))}"
-    metrics = obj.get("metrics", [])
-    if not isinstance(metrics, list):
-        return "'metrics' must be a list"
-    for item in metrics:
-        if not isinstance(item, dict) or not isinstance(item.get("name"), str) or not item["name"]:
-            return "each metric needs a non-empty 'name'"
-        if not _is_number(item.get("shift_sigma")):
-            return f"metric {item['name']!r}: 'shift_sigma' must be a finite number"
-    return _window_problem(obj["window_metrics"]) if "window_metrics" in obj else None
-
-
-def _read(path: str | Path, what: str) -> bytes:
-    try:
-        return Path(path).read_bytes()
-    except OSError as exc:
-        raise EvaluationError(f"{path}: cannot read {what}: {exc.strerror or exc}") from None
-
-
-def load_events(path: str | Path) -> list[dict]:
-    """Read alert events, one JSON object per line (blank lines skipped)."""
-    events = []
-    for number, line in enumerate(_read(path, "events").splitlines(), start=1):
-        if not line.strip():
-            continue
-        try:
-            obj = orjson.loads(line)
-        except orjson.JSONDecodeError:
-            raise EvaluationError(f"{path}:{number}: not valid JSON") from None
-        problem = _event_problem(obj)
-        if problem:
-            raise EvaluationError(f"{path}:{number}: {problem}")
-        events.append(obj)
-    return events
-
-
-def _scoring_keys(path: str | Path, data: dict) -> tuple[float | None, int | None, dict[str, float]]:
-    """The optional ``step_seconds``, ``tolerance_steps`` and ``scored_from`` of a labels file, checked."""
-    step = data.get("step_seconds")
-    if step is not None and not (_is_number(step) and step > 0):
-        raise EvaluationError(f"{path}: 'step_seconds' must be a positive number of seconds")
-    steps = data.get("tolerance_steps")
-    if steps is not None:
-        if not isinstance(steps, int) or isinstance(steps, bool) or steps < 0:
-            raise EvaluationError(f"{path}: 'tolerance_steps' must be an integer >= 0")
-        if step is None:
-            raise EvaluationError(f"{path}: 'tolerance_steps' needs 'step_seconds'")
-    scored_from = data.get("scored_from", {})
-    if not isinstance(scored_from, dict):
-        raise EvaluationError(f"{path}: 'scored_from' must map entities to epoch seconds")
-    for entity, ts in scored_from.items():
-        if not entity or not _is_number(ts):
-            raise EvaluationError(f"{path}: scored_from {entity!r}: must be a finite number of epoch seconds")
-    return (None if step is None else float(step), steps,
-            {entity: float(ts) for entity, ts in scored_from.items()})
-
-
-def load_labels(path: str | Path) -> Labels:
-    """Read a labels file (module docstring) into `Labels`."""
-    try:
-        data = orjson.loads(_read(path, "labels"))
-    except orjson.JSONDecodeError as exc:
-        raise EvaluationError(f"{path}:{exc.lineno}: not valid JSON ({exc.msg})") from None
-    if not isinstance(data, dict):
-        raise EvaluationError(f"{path}: labels must be a JSON object")
-    vectors = data.get("vectors")
-    if not isinstance(vectors, int) or isinstance(vectors, bool) or vectors <= 0:
-        raise EvaluationError(f"{path}: 'vectors' must be a positive integer")
-    if not isinstance(data.get("incidents"), list):
-        raise EvaluationError(f"{path}: 'incidents' must be a list")
-    step, tolerance_steps, scored_from = _scoring_keys(path, data)
-    incidents = []
-    for i, inc in enumerate(data["incidents"]):
-        where = f"{path}: incident {i}"
-        if not isinstance(inc, dict) or not isinstance(inc.get("entity"), str) or not inc["entity"]:
-            raise EvaluationError(f"{where}: needs a non-empty 'entity'")
-        if not (_is_number(inc.get("start")) and _is_number(inc.get("end")) and inc["start"] <= inc["end"]):
-            raise EvaluationError(f"{where}: 'start' and 'end' must be numbers with start <= end")
-        metrics = inc.get("metrics")
-        if not isinstance(metrics, list) or not metrics or not all(isinstance(m, str) and m for m in metrics):
-            raise EvaluationError(f"{where}: 'metrics' must be a non-empty list of names")
-        shift = inc.get("shift_sigma", {})
-        if not isinstance(shift, dict) or not all(_is_number(v) for v in shift.values()):
-            raise EvaluationError(f"{where}: 'shift_sigma' must map names to numbers")
-        if inc["end"] < scored_from.get(inc["entity"], -math.inf):
-            raise EvaluationError(f"{where}: ends before scored_from of {inc['entity']!r}, so it can never "
-                                  f"be found")
-        incidents.append(LabelledIncident(inc["entity"], float(inc["start"]), float(inc["end"]),
-                                          tuple(metrics), dict(shift), str(inc.get("kind", "step"))))
-    surges = data.get("surges", [])
-    if not isinstance(surges, list):
-        raise EvaluationError(f"{path}: 'surges' must be a list")
-    for i, surge in enumerate(surges):
-        if not (isinstance(surge, dict) and _is_number(surge.get("start")) and _is_number(surge.get("end"))
-                and surge["start"] <= surge["end"]):
-            raise EvaluationError(f"{path}: surge {i}: 'start' and 'end' must be numbers with start <= end")
-    return Labels(str(data.get("scenario", Path(path).name)), vectors, tuple(incidents),
-                  str(data.get("description", "")),
-                  tuple((float(s["start"]), float(s["end"])) for s in surges),
-                  step_seconds=step, tolerance_steps=tolerance_steps, scored_from=scored_from)
-
-
-def predicted_incidents(events: Sequence[dict]) -> list[PredictedIncident]:
-    """Group events by incident id into predictions, in onset order (ids without firing are dropped)."""
-    entity: dict[str, str] = {}
-    onset: dict[str, float] = {}
-    sizes: dict[str, dict[str, float]] = {}
-    last: dict[str, dict] = {}
-    window: dict[str, dict] = {}
-    for i, event in enumerate(events):
-        problem = _event_problem(event)
-        if problem:
-            raise EvaluationError(f"event {i}: {problem}")
-        key = event["incident"]
-        if entity.setdefault(key, event["entity"]) != event["entity"]:
-            raise EvaluationError(f"event {i}: incident {key!r} already belongs to entity {entity[key]!r}")
-        last[key] = event
-        if "window_metrics" in event:
-            window[key] = event["window_metrics"]
-        if event["state"] != "firing":
-            continue
-        onset[key] = min(onset.get(key, math.inf), float(event["ts"]))
-        seen = sizes.setdefault(key, {})
-        for item in event.get("metrics", []):
-            seen[item["name"]] = max(seen.get(item["name"], 0.0), abs(float(item["shift_sigma"])))
-    found = [PredictedIncident(key, entity[key], onset[key],
-                               tuple(sorted(sizes[key].items(), key=lambda kv: (-kv[1], kv[0]))),
-                               closed=math.inf if last[key]["state"] == "firing" else float(last[key]["ts"]),
-                               window={method: tuple(item["name"] for item in window[key].get(method, []))
-                                       for method in WINDOW_RANKINGS} if key in window else {})
-             for key in onset]
-    return sorted(found, key=lambda p: (p.onset, p.incident))
-
-
-def _match(label: LabelledIncident, p: PredictedIncident) -> Match:
-    rates = {}
-    for name in RANKINGS:
-        ranking = p.ranking(name)
-        if ranking is not None:
-            rates[name] = tuple(hit_rate(ranking, label.metrics, percent) for percent in HIT_RATE_PERCENTS)
-    return Match(label, p, p.onset - label.start, rates["metrics"][0], rates)   # localisation: HitRate@100%
-
-
-def _mean_hit_rates(matches: Sequence[Match]) -> dict[str, HitRate]:
-    out = {}
-    for name in RANKINGS:
-        rates = [m.hit_rates[name] for m in matches if name in m.hit_rates]
-        if rates:
-            at_100, at_150 = np.mean(rates, axis=0)
-            out[name] = HitRate(float(at_100), float(at_150), len(rates))
+def _entities(by_entity: dict[str, list[Vector]], engine: Engine, config: Config, labels: Labels) -> list[_Entity]:
+    """Per entity, the dense matrix of its vectors, its warm-up and its history (module docstring)."""
+    out = []
+    for entity, own in by_entity.items():
+        stream = EntityStream(entity, engine.rules, engine.detector_config)
+        X, ts = stream.assemble(own)
+        warmup = min(config.model.warmup, X.shape[0])
+        before = int(np.count_nonzero(ts < labels.scored_after(entity)))
+        out.append(_Entity(stream, X, ts, engine.rules.log_scale(stream.names), warmup, max(warmup, before)))
     return out
 
 
-def _scores(hits: int, claimed: int, truth: int) -> tuple[float, float, float]:
-    """precision, recall, F1 with the module's conventions for empty denominators."""
-    precision = hits / claimed if claimed else 1.0
-    recall = hits / truth if truth else 1.0
-    return precision, recall, 2 * precision * recall / (precision + recall) if precision + recall else 0.0
+def _model_scale(e: _Entity) -> np.ndarray:
+    return log_scaled(e.X, e.log_mask)
 
 
-def point_adjusted(predicted: Sequence[PredictedIncident], labels: Labels,
-                   timestamps: Mapping[str, np.ndarray]) -> PointAdjusted:
-    """Point-adjusted precision, recall, F1 over the scored vectors of ``timestamps`` (entity ->
-    sorted ts of its vectors); the convention of Xu et al. 2018, see the module docstring."""
-    spans: dict[str, list[tuple[float, float]]] = {}
-    for p in predicted:
-        spans.setdefault(p.entity, []).append((p.onset, p.closed))
-    segments: dict[str, list[tuple[float, float]]] = {}
-    for lab in labels.incidents:
-        segments.setdefault(lab.entity, []).append((lab.start, lab.end))
-    points = labelled_points = alerted_points = hits = 0
-    for entity, all_ts in timestamps.items():
-        ts = np.asarray(all_ts, dtype=float)
-        ts = ts[ts >= labels.scored_after(entity)]
-        labelled = covered(ts, segments.get(entity, []))
-        alerted = point_adjust(covered(ts, spans.get(entity, [])), labelled)
-        points += ts.size
-        labelled_points += int(labelled.sum())
-        alerted_points += int(alerted.sum())
-        hits += int((alerted & labelled).sum())
-    return PointAdjusted(*_scores(hits, alerted_points, labelled_points), points, labelled_points, alerted_points)
+def _after_warmup(e: _Entity, flags: Flags) -> Flags:
+    return Flags(flags.active[e.warmup:], flags.stat[e.warmup:], flags.expected[e.warmup:])
 
 
-def scored_entity_days(labels: Labels, timestamps: Mapping[str, np.ndarray]) -> float:
-    """Sum over entities of their vectors at or after ``scored_from`` times the step, in days."""
-    seconds = 0.0
-    for entity, all_ts in timestamps.items():
-        ts = np.asarray(all_ts, dtype=float)
-        step = labels.step_seconds or (float(np.median(np.diff(ts))) if ts.size > 1 else 0.0)
-        seconds += int(np.count_nonzero(ts >= labels.scored_after(entity))) * step
-    return seconds / SECONDS_PER_DAY
+def _events(e: _Entity, flags: Flags, config: Config, whole_vector: bool = False) -> list[dict]:
+    """The decision layer and the event format for ``flags`` of the rows after the warm-up."""
+    ts = e.ts[e.warmup:]
+    if whole_vector:
+        value = expected = np.full(flags.stat.shape, np.nan)
+    else:
+        value = e.X[e.warmup:]
+        expected = np.array(flags.expected)
+        expected[:, e.log_mask] = symexp(expected[:, e.log_mask])
+    tracker = AlertTracker(flags.active.shape[1], config.detector_config().decision)
+    transitions = tracker.step(flags.active, flags.stat, flags.stat, value, expected, ts)
+    events = list(events_from_transitions(_WholeVector(e.stream.entity) if whole_vector else e.stream,
+                                          transitions, ts))
+    if whole_vector:   # it says that the vector is odd, not which metric: no metrics to rank
+        for event in events:
+            event["metrics"] = []
+    return events
 
 
-def evaluate(events: Sequence[dict], labels: Labels, *, vectors: int | None = None,
-             tolerance_seconds: float | None = None,
-             timestamps: Mapping[str, np.ndarray] | None = None) -> Evaluation:
-    """Match predicted incidents to labelled ones and compute the scores (module docstring).
-
-    ``tolerance_seconds`` defaults to the labels'; ``timestamps`` (entity -> sorted ts of the
-    input's vectors) enables the per-entity-day rate and the point-adjusted scores."""
-    count = labels.vectors if vectors is None else vectors
-    if count <= 0:
-        raise EvaluationError(f"vectors must be positive, got {count}")
-    tolerance = labels.tolerance_seconds if tolerance_seconds is None else tolerance_seconds
-    if not tolerance >= 0:
-        raise EvaluationError(f"tolerance_seconds must be >= 0, got {tolerance}")
-    predicted = predicted_incidents(events)
-    order = sorted(range(len(labels.incidents)), key=lambda i: (labels.incidents[i].start, i))
-    free = set(order)
-    matches: list[Match] = []
-    false_alerts: list[PredictedIncident] = []
-    fragments: list[PredictedIncident] = []
-    unscored: list[PredictedIncident] = []
-    for p in predicted:
-        if p.onset < labels.scored_after(p.entity):
-            unscored.append(p)
-            continue
-        covering = [i for i in order if _covers(labels.incidents[i], p, tolerance)]
-        hit = next((i for i in covering if i in free), None)
-        if hit is not None:
-            free.discard(hit)
-            matches.append(_match(labels.incidents[hit], p))
-        else:   # every label covering it is already matched (it would have taken a free one)
-            (fragments if covering else false_alerts).append(p)
-    precision, recall, f1 = _scores(len(matches), len(matches) + len(false_alerts), len(labels.incidents))
-    delays = [m.delay_seconds for m in matches]
-    days = scored_entity_days(labels, timestamps) if timestamps is not None else None
-    return Evaluation(
-        scenario=labels.scenario, vectors=count, tolerance_seconds=float(tolerance),
-        labelled=len(labels.incidents), predicted=tuple(predicted), matches=tuple(matches),
-        missed=tuple(labels.incidents[i] for i in order if i in free), false_alerts=tuple(false_alerts),
-        fragments=tuple(fragments), unscored=tuple(unscored), precision=precision, recall=recall, f1=f1,
-        localisation=sum(m.localisation for m in matches) / len(matches) if matches else None,
-        delay_mean_seconds=sum(delays) / len(delays) if delays else None,
-        delay_median_seconds=float(np.median(delays)) if delays else None,
-        delay_max_seconds=max(delays) if delays else None,
-        false_alerts_per_10k=len(false_alerts) * 10000 / count,
-        step_seconds=labels.step_seconds, scored_entity_days=days,
-        false_alerts_per_entity_day=len(false_alerts) / days if days else None,
-        hit_rate=_mean_hit_rates(matches),
-        point_adjusted=point_adjusted(predicted, labels, timestamps) if timestamps is not None else None,
-    )
+def _stacks(entities: list[_Entity]) -> list[list[_Entity]]:
+    """Entities in groups whose stacked matrix (longest T x all their metrics) stays within STACK_CELLS."""
+    groups: list[list[_Entity]] = []
+    rows = cols = 0
+    for e in sorted(entities, key=lambda e: e.X.shape[0]):
+        T, n = e.X.shape
+        if groups and max(rows, T) * (cols + n) <= STACK_CELLS:
+            groups[-1].append(e)
+            rows, cols = max(rows, T), cols + n
+        else:
+            groups.append([e])
+            rows, cols = T, n
+    return groups
 
 
-def _covers(label: LabelledIncident, p: PredictedIncident, tolerance: float) -> bool:
-    return p.entity == label.entity and label.start - tolerance <= p.onset <= label.end
+def _stacked(entities: list[_Entity], detect: Callable[[np.ndarray, np.ndarray], Flags]) -> list[Flags]:
+    """Run a detector of independent columns once on the entities side by side (rows padded with
+    NaN, i.e. missing) and split its flags back; ``detect(F, history per column)``."""
+    widths = [e.X.shape[1] for e in entities]
+    edges = np.cumsum([0, *widths])
+    F = np.full((max(e.X.shape[0] for e in entities), edges[-1]), np.nan)
+    for e, lo, hi in zip(entities, edges[:-1], edges[1:]):
+        F[: e.X.shape[0], lo:hi] = _model_scale(e)
+    flags = detect(F, np.repeat([e.history for e in entities], widths))
+    return [Flags(*(a[: e.X.shape[0], lo:hi] for a in (flags.active, flags.stat, flags.expected)))
+            for e, lo, hi in zip(entities, edges[:-1], edges[1:])]
 
 
-def _num(value: float | None, digits: int = 3) -> str:
+def _ewma_runner(calibrated: bool) -> Callable[[list[_Entity], Config], list[dict]]:
+    def run(entities: list[_Entity], config: Config) -> list[dict]:
+        m = config.model
+
+        def detect(F: np.ndarray, history: np.ndarray) -> Flags:
+            if calibrated:
+                return ewma_zscore_calibrated(F, history=history, halflife=EWMA_HALFLIFE,
+                                              false_alarm=m.false_alarm, warmup=m.warmup)
+            return EWMAZScore(F.shape[1], halflife=EWMA_HALFLIFE, false_alarm=m.false_alarm,
+                              warmup=m.warmup).process(F)
+
+        return [event for group in _stacks(entities)
+                for e, flags in zip(group, _stacked(group, detect))
+                for event in _events(e, _after_warmup(e, flags), config)]
+    return run
+
+
+def _each_entity(detect: Callable[[_Entity, Config], Flags], whole_vector: bool = False
+                 ) -> Callable[[list[_Entity], Config], list[dict]]:
+    """A per-entity detector (flags for the rows after the warm-up) over all entities; those with
+    fewer than 2 warm-up rows are skipped."""
+    def run(entities: list[_Entity], config: Config) -> list[dict]:
+        return [event for e in entities if e.warmup >= 2
+                for event in _events(e, detect(e, config), config, whole_vector)]
+    return run
+
+
+def _hst(e: _Entity, config: Config) -> Flags:
+    F = _model_scale(e)
+    detector = HalfSpaceTreesDetector(F.shape[1], false_alarm=config.model.false_alarm, seed=HST_SEED)
+    return detector.fit(F[: e.warmup]).process(F[e.warmup:])
+
+
+def _pcp(e: _Entity, config: Config) -> Flags:
+    return _after_warmup(e, pcp_detect(_model_scale(e), warmup=e.warmup, false_alarm=config.model.false_alarm).flags)
+
+
+def _pcp_calibrated(e: _Entity, config: Config) -> Flags:
+    return _after_warmup(e, pcp_calibrated(_model_scale(e), warmup=e.warmup, history=e.history,
+                                           false_alarm=config.model.false_alarm))
+
+
+_BASELINES: dict[str, Callable[[list[_Entity], Config], list[dict]]] = {
+    "ewma_zscore": _ewma_runner(calibrated=False),
+    "ewma_zscore_calibrated": _ewma_runner(calibrated=True),
+    "halfspacetrees": _each_entity(_hst, whole_vector=True),
+    "pcp": _each_entity(_pcp),
+    "pcp_calibrated": _each_entity(_pcp_calibrated),
+}
+
+
+def _shiftsieve(vectors: list[Vector], config: Config) -> list[dict]:
+    events: list[dict] = []
+    engine = Engine.from_config(config, sinks=[events.append])
+    for vector in vectors:
+        engine.feed(vector)
+    engine.flush()
+    return events
+
+
+def compare_methods(path: str | Path, config: Config, labels: Labels, *,
+                    methods: Sequence[str] | None = None) -> list[MethodScore]:
+    """Run each method on the input at ``path``, score it against ``labels``; rows in ``methods`` order."""
+    chosen = check_methods(list(METHODS if methods is None else methods))
+    vectors = _load(path, config)
+    by_entity = _in_order(vectors)
+    timestamps = _timestamps(by_entity)
+    count = sum(ts.size for ts in timestamps.values())
+    entities = _entities(by_entity, Engine.from_config(config), config, labels) \
+        if set(chosen) - {"shiftsieve"} else []
+    rows = []
+    for name in chosen:
+        started = time.perf_counter()
+        events = _shiftsieve(vectors, config) if name == "shiftsieve" else _BASELINES[name](entities, config)
+        seconds = time.perf_counter() - started
+        rows.append(MethodScore(name, LOCALISES[name], score_events(events, labels, vectors=count, timestamps=timestamps),
+                                count / seconds if seconds > 0 else float("inf"), seconds))
+    return rows
+
+
+def _cell(value: float | None, digits: int = 2) -> str:
     return "n/a" if value is None else f"{value:.{digits}f}"
 
 
-def _rates(rates: Mapping[str, Sequence[float]]) -> str:
-    """``metrics 0.50/1.00  msbl ...``: HitRate@100%/@150% per ranking."""
-    return "  ".join(f"{name} {'/'.join(f'{x:.2f}' for x in r)}" for name, r in rates.items()) or "n/a"
+def _hit_cell(e: Evaluation, ranking: str, localises: bool) -> str:
+    h = e.hit_rate.get(ranking)
+    return "n/a" if h is None or not localises else f"{h.at_100:.2f}/{h.at_150:.2f}"
 
 
-def format_table(evaluation: Evaluation) -> str:
-    """Compact human-readable report of an `Evaluation`."""
-    e = evaluation
-    pa = e.point_adjusted
-    steps = "" if e.delay_median_steps is None else f" ({e.delay_median_steps:.1f} steps)"
-    per_day = "" if e.false_alerts_per_entity_day is None else \
-        f", {e.false_alerts_per_entity_day:.2f} per entity-day ({e.scored_entity_days:.1f} scored entity-days)"
-    lines = [
-        f"scenario {e.scenario}: {e.labelled} labelled, {len(e.predicted)} predicted, {len(e.matches)} matched"
-        f" (tolerance {e.tolerance_seconds:g} s; {len(e.unscored)} before scored_from, not scored)",
-        f"precision {_num(e.precision)}  recall {_num(e.recall)}  F1 {_num(e.f1)}  localisation {_num(e.localisation)}",
-        f"HitRate@100%/150%: {_rates({name: (h.at_100, h.at_150) for name, h in e.hit_rate.items()})}",
-        f"delay mean {_num(e.delay_mean_seconds, 1)} s  median {_num(e.delay_median_seconds, 1)} s{steps}"
-        f"  max {_num(e.delay_max_seconds, 1)} s",
-        f"false alerts {len(e.false_alerts)} = {e.false_alerts_per_10k:.2f} per 10k vectors{per_day}"
-        f" ({e.vectors} vectors, {len(e.fragments)} fragments)",
-    ]
-    if pa is not None:
-        lines.append(f"point-adjusted (Xu et al. 2018; inflated, only to compare with published figures): "
-                     f"precision {pa.precision:.3f}  recall {pa.recall:.3f}  F1 {pa.f1:.3f}")
-    for m in e.matches:
-        lines.append(f"  found  {m.label.entity}  start {m.label.start:.1f}  delay {m.delay_seconds:+.1f} s"
-                     f"  HitRate {_rates(m.hit_rates)}  {m.predicted.incident}"
-                     f"  top {_top(m.predicted)}")
-    for lab in e.missed:
-        lines.append(f"  missed {lab.entity}  start {lab.start:.1f}  end {lab.end:.1f}  {','.join(lab.metrics)}")
-    for p in e.false_alerts:
-        lines.append(f"  false  {p.entity}  onset {p.onset:.1f}  {p.incident}  top {_top(p)}")
+def format_comparison(rows: Sequence[MethodScore]) -> str:
+    """The one table (F1, precision, recall, false alerts per entity-day, fragments, median delay,
+    HitRate on each ranking, point-adjusted F1, time) and a legend.  Localisation is not a column:
+    it is HitRate@100% of the metrics ranking (the JSON keeps it)."""
+    head = ("method", "F1", "prec", "recall", "false/day", "frag", "delay s (steps)",
+            "HR metrics", "HR msbl", "HR gLASSO", "PA-F1*", "seconds", "vectors/s")
+    body = []
+    for r in rows:
+        e = r.evaluation
+        delay = "n/a" if e.delay_median_seconds is None else f"{e.delay_median_seconds:.0f}" + (
+            "" if e.delay_median_steps is None else f" ({e.delay_median_steps:.1f})")
+        body.append((r.method, f"{e.f1:.2f}", f"{e.precision:.2f}", f"{e.recall:.2f}",
+                     _cell(e.false_alerts_per_entity_day), str(len(e.fragments)), delay,
+                     _hit_cell(e, "metrics", r.localises), _hit_cell(e, "msbl", r.localises),
+                     _hit_cell(e, "group_lasso", r.localises),
+                     _cell(None if e.point_adjusted is None else e.point_adjusted.f1),
+                     f"{r.seconds:.1f}", f"{r.vectors_per_second:,.0f}"))
+    if not rows:
+        return "no methods"
+    widths = [max(len(row[i]) for row in (head, *body)) for i in range(len(head))]
+    e = rows[0].evaluation
+    days = "" if e.scored_entity_days is None else f", {e.scored_entity_days:.1f} scored entity-days"
+    lines = [f"scenario {e.scenario}: {e.labelled} labelled incidents, {e.vectors} vectors{days}, "
+             f"onsets up to {e.tolerance_seconds:g} s early count"]
+    for row in (head, *body):
+        lines.append("  ".join(cell.ljust(w) if i == 0 else cell.rjust(w)
+                               for i, (cell, w) in enumerate(zip(row, widths))))
+    lines += ["false/day: false alerts per scored entity-day; frag: further onsets inside an already detected",
+              "  label (not false alerts); delay: median onset - start; HR: HitRate@100%/@150% (Su et al. 2019) on",
+              "  the incident's metrics by peak |shift| and on its joint-window rankings (M-SBL, group LASSO);",
+              "  PA-F1*: point-adjusted F1 (Xu et al. 2018), the published papers' convention -- it inflates",
+              "  scores; compare it only with published figures."]
     return "\n".join(lines)
-
-
-def _top(p: PredictedIncident, k: int = 3) -> str:
-    return ",".join(f"{name}({size:.1f})" for name, size in p.metrics[:k]) or "-"

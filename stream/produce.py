@@ -63,7 +63,7 @@ from .assemble import metric_labels
 from .config import ENCODINGS, Config
 from .decode import Vector, encode_vector
 from .otlp import encode_otlp
-from .readers import InputError, Rejected
+from .lines import InputError, Rejected
 from .replay import open_input
 from .samples import Sample, encode_sample
 

@@ -48,12 +48,9 @@ from .lines import (CHUNK_BYTES, DEFAULT_RAW_CAP, InputError, Rejected, one_line
 from .promql import query_range_records
 
 __all__ = [
-    "DEFAULT_RAW_CAP",
     "REASONS",
     "DeadLetterWriter",
-    "InputError",
     "RecordStream",
-    "Rejected",
     "input_size",
     "open_records",
 ]

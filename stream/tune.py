@@ -38,8 +38,9 @@ import numpy as np
 
 from .config import Config
 from .decode import DecodeError, parse_timestamp
-from .evaluate import DEFAULT_TOLERANCE_SECONDS, Evaluation, Labels, evaluate, format_table, predicted_incidents
-from .readers import InputError, Rejected
+from .labels import DEFAULT_TOLERANCE_SECONDS, Labels
+from .scoring import Evaluation, format_table, predicted_incidents, score_events
+from .lines import InputError, Rejected
 from .replay import open_input, replay
 
 #: The search grid, each axis from most to least sensitive (module docstring).
@@ -194,7 +195,7 @@ def tune(path: str | Path, config: Config, *, budget_per_day: float, quiet_until
     recommended = candidates[-1] if candidates and candidates[-1].within_budget else None
     rest = None
     if labels is not None and recommended is not None:   # every label lies after the quiet period (checked)
-        rest = evaluate(rest_events, labels, vectors=int(np.count_nonzero(span.ts >= until)))
+        rest = score_events(rest_events, labels, vectors=int(np.count_nonzero(span.ts >= until)))
     return TuneResult(budget_per_day=float(budget_per_day), quiet_until=until, quiet_days=quiet_days,
                       candidates=tuple(candidates), recommended=recommended,
                       rest_incidents=len(predicted_incidents(rest_events)), rest=rest, input=str(path),

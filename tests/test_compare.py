@@ -6,10 +6,10 @@ import json
 import pytest
 
 from shiftsieve.stream.cli import main
-from shiftsieve.stream.compare import METHODS, compare_methods, format_comparison
+from shiftsieve.stream.evaluate import METHODS, compare_methods, format_comparison
 from shiftsieve.stream.config import load_config
 from shiftsieve.stream.demo import scenarios
-from shiftsieve.stream.evaluate import EvaluationError, load_labels
+from shiftsieve.stream.labels import EvaluationError, load_labels
 
 
 def _files(name):

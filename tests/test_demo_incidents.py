@@ -11,7 +11,8 @@ import pytest
 
 from shiftsieve.stream.config import load_config
 from shiftsieve.stream.demo import scenarios
-from shiftsieve.stream.evaluate import evaluate, load_labels
+from shiftsieve.stream.labels import load_labels
+from shiftsieve.stream.scoring import score_events
 from shiftsieve.stream.replay import replay
 
 BUNDLE = scenarios()
@@ -21,7 +22,7 @@ def run(name):
     events = []
     summary = replay(BUNDLE[name], load_config(environ={}), sinks=[events.append], progress=False)
     labels = load_labels(BUNDLE[name].with_name(f"{name}.labels.json"))
-    return events, labels, evaluate(events, labels, vectors=summary.vectors)
+    return events, labels, score_events(events, labels, vectors=summary.vectors)
 
 
 def test_all_four_incidents_are_bundled():

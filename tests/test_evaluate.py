@@ -14,16 +14,8 @@ import pytest
 from sklearn.metrics import f1_score, precision_score, recall_score
 
 import shiftsieve.replay_data as replay_data
-from shiftsieve.stream.evaluate import (
-    DEFAULT_TOLERANCE_SECONDS,
-    EvaluationError,
-    LabelledIncident,
-    Labels,
-    evaluate,
-    format_table,
-    load_events,
-    load_labels,
-)
+from shiftsieve.stream.labels import DEFAULT_TOLERANCE_SECONDS, EvaluationError, LabelledIncident, Labels, load_labels
+from shiftsieve.stream.scoring import format_table, load_events, score_events
 
 
 def fire(ts: float, incident: str, *metrics: tuple[str, float], state: str = "firing") -> dict:
@@ -49,7 +41,7 @@ EVENTS = [
 
 
 def test_matching_scores() -> None:
-    e = evaluate(EVENTS, TWO)
+    e = score_events(EVENTS, TWO)
     assert [p.incident for p in e.predicted] == ["api-1/1030", "api-2/1100", "api-1/1500", "db-1/4950", "db-1/9000"]
     assert [m.predicted.incident for m in e.matches] == ["api-1/1030", "db-1/4950"]
     assert [p.incident for p in e.false_alerts] == ["api-2/1100", "db-1/9000"]
@@ -69,26 +61,26 @@ def test_matching_scores() -> None:
 
 
 def test_vectors_argument_overrides_labels() -> None:
-    assert evaluate(EVENTS, TWO, vectors=1000).false_alerts_per_10k == 20.0  # 2 * 10000 / 1000
+    assert score_events(EVENTS, TWO, vectors=1000).false_alerts_per_10k == 20.0  # 2 * 10000 / 1000
 
 
 def test_zero_labels_and_silence_is_perfect() -> None:
     surge = Labels("surge", 6000, ())
-    e = evaluate([], surge)
+    e = score_events([], surge)
     assert (e.precision, e.recall, e.f1) == (1.0, 1.0, 1.0)
     assert e.localisation is None and e.delay_mean_seconds is None and e.delay_max_seconds is None
     assert e.false_alerts_per_10k == 0.0
 
 
 def test_zero_labels_with_a_false_alert() -> None:
-    e = evaluate([fire(10.0, "api-1/10", ("a", 7.0))], Labels("surge", 6000, ()))
+    e = score_events([fire(10.0, "api-1/10", ("a", 7.0))], Labels("surge", 6000, ()))
     assert (e.precision, e.recall, e.f1) == (0.0, 1.0, 0.0)
     assert e.false_alerts_per_10k == pytest.approx(10000 / 6000)
     assert e.fragments == ()
 
 
 def test_silent_detector_misses_everything() -> None:
-    e = evaluate([], TWO)
+    e = score_events([], TWO)
     assert (e.precision, e.recall, e.f1) == (1.0, 0.0, 0.0)
     assert [lab.entity for lab in e.missed] == ["api-1", "db-1"]
 
@@ -96,14 +88,14 @@ def test_silent_detector_misses_everything() -> None:
 @pytest.mark.parametrize("onset, matched", [(940.0, True), (939.5, False), (2000.0, True), (2000.5, False)])
 def test_tolerance_window_edges(onset: float, matched: bool) -> None:
     labels = Labels("edge", 100, (label("api-1", 1000.0, 2000.0, "a"),))
-    e = evaluate([fire(onset, f"api-1/{onset}", ("a", 6.0))], labels, tolerance_seconds=60.0)
+    e = score_events([fire(onset, f"api-1/{onset}", ("a", 6.0))], labels, tolerance_seconds=60.0)
     assert bool(e.matches) is matched
 
 
 def test_greedy_by_onset_each_label_once() -> None:
     labels = Labels("overlap", 100, (label("api-1", 2000.0, 4000.0, "a"), label("api-1", 1000.0, 3000.0, "a")))
     events = [fire(2600.0, "api-1/p2", ("a", 6.0)), fire(2500.0, "api-1/p1", ("a", 6.0))]
-    e = evaluate(events, labels)
+    e = score_events(events, labels)
     # p1 (earlier onset) takes the earlier-starting label, p2 the other one
     assert [(m.predicted.incident, m.label.start, m.delay_seconds) for m in e.matches] == [
         ("api-1/p1", 1000.0, 1500.0), ("api-1/p2", 2000.0, 600.0)]
@@ -112,12 +104,12 @@ def test_greedy_by_onset_each_label_once() -> None:
 
 def test_localisation_ties_break_by_name() -> None:
     labels = Labels("tie", 100, (label("api-1", 0.0, 100.0, "a"),))
-    e = evaluate([fire(10.0, "api-1/10", ("z", 5.0), ("a", -5.0))], labels)
+    e = score_events([fire(10.0, "api-1/10", ("z", 5.0), ("a", -5.0))], labels)
     assert e.localisation == 1.0  # |a| == |z|: a ranks first by name
 
 
 def test_report_and_dict() -> None:
-    e = evaluate(EVENTS, TWO)
+    e = score_events(EVENTS, TWO)
     d = orjson.loads(orjson.dumps(e.to_dict()))
     assert (d["labelled"], d["predicted"], d["matched"], d["false_alerts"], d["fragments"]) == (2, 5, 2, 2, 1)
     assert d["false_alerts_per_10k_vectors"] == 1.0 and d["unscored"] == 0
@@ -128,7 +120,7 @@ def test_report_and_dict() -> None:
     for text in ("precision 0.500", "recall 1.000", "F1 0.667", "localisation 0.333",
                  "delay mean -10.0 s  median -10.0 s  max 30.0 s", "1.00 per 10k vectors", "1 fragments"):
         assert text in table
-    assert "localisation n/a" in format_table(evaluate([], Labels("surge", 6000, ())))
+    assert "localisation n/a" in format_table(score_events([], Labels("surge", 6000, ())))
 
 
 def test_load_round_trip(tmp_path: Path) -> None:
@@ -181,11 +173,11 @@ def test_missing_files_and_bad_arguments(tmp_path: Path) -> None:
     with pytest.raises(EvaluationError, match="cannot read labels"):
         load_labels(tmp_path / "nothing.labels.json")
     with pytest.raises(EvaluationError, match="event 0: 'ts'"):
-        evaluate([{"entity": "a", "state": "firing", "incident": "a/1"}], TWO)
+        score_events([{"entity": "a", "state": "firing", "incident": "a/1"}], TWO)
     with pytest.raises(EvaluationError, match="already belongs to entity"):
-        evaluate([fire(1.0, "a/1"), {**fire(2.0, "a/1"), "entity": "b"}], TWO)
+        score_events([fire(1.0, "a/1"), {**fire(2.0, "a/1"), "entity": "b"}], TWO)
     with pytest.raises(EvaluationError, match="vectors must be positive"):
-        evaluate([], TWO, vectors=0)
+        score_events([], TWO, vectors=0)
 
 
 # --- scored_from, tolerance in steps, fragments: the ASD reading of published labelled sets ---------------
@@ -211,7 +203,7 @@ API_TS = {"api-1": np.arange(0.0, 600.0, 60.0)}
 
 
 def test_scored_from_fragments_and_delay_in_steps() -> None:
-    e = evaluate(SCORED_EVENTS, _scored_labels(), timestamps=API_TS)
+    e = score_events(SCORED_EVENTS, _scored_labels(), timestamps=API_TS)
     assert e.tolerance_seconds == 60.0                        # 1 step of 60 s
     assert [p.incident for p in e.unscored] == ["api-1/0"]
     assert [m.predicted.incident for m in e.matches] == ["api-1/180"]
@@ -234,7 +226,7 @@ def test_point_adjusted_f1_as_defined_by_xu_et_al_2018() -> None:
     #   adjusted: the first segment holds ts 180, so 120 180 240 are alerted; the second holds none.
     y_true = [0, 1, 1, 1, 0, 0, 1, 1, 0]
     y_adjusted = [0, 1, 1, 1, 0, 0, 0, 0, 1]
-    pa = evaluate(SCORED_EVENTS, _scored_labels(), timestamps=API_TS).point_adjusted
+    pa = score_events(SCORED_EVENTS, _scored_labels(), timestamps=API_TS).point_adjusted
     assert (pa.points, pa.labelled_points, pa.alerted_points) == (9, 5, 4)
     # scikit-learn's point-wise scores of the hand-adjusted vector are the reference.
     assert pa.precision == pytest.approx(precision_score(y_true, y_adjusted))   # 3 / 4
@@ -264,7 +256,7 @@ def test_hit_rate_as_defined_by_su_et_al_2019() -> None:
         {**closed(50.0, "api-1/10"), "window_metrics": window(["m4"], ["m2", "m4", "m1", "m9"])},
         fire(10.0, "db-1/10", ("y", 5.0), ("z", 4.0), ("x", 3.0)),
     ]
-    e = evaluate(events, labels)
+    e = score_events(events, labels)
     api, db = e.matches
     assert {k: pytest.approx(v) for k, v in api.hit_rates.items()} == {
         "metrics": (1 / 3, 2 / 3), "group_lasso": (1 / 3, 1 / 3), "msbl": (1.0, 1.0)}
@@ -283,7 +275,7 @@ def test_hit_rate_as_defined_by_su_et_al_2019() -> None:
 def test_tolerance_in_steps_edges(onset: float, matched: bool) -> None:
     # 5 steps of 300 s before a start at 1000 s: onsets from -500 s on detect it.
     labels = Labels("asd", 100, (label("omi-1", 1000.0, 2000.0, "a"),), step_seconds=300.0, tolerance_steps=5)
-    e = evaluate([fire(onset, f"omi-1/{onset}", ("a", 6.0))], labels)
+    e = score_events([fire(onset, f"omi-1/{onset}", ("a", 6.0))], labels)
     assert bool(e.matches) is matched
 
 

@@ -46,7 +46,7 @@ from shiftsieve.stream.decode import (DEFAULT_LIMITS, INVALID_VALUE_REASONS, Dec
 from shiftsieve.stream.engine import Engine
 from shiftsieve.stream.exporter import Exporter
 from shiftsieve.stream.otlp import OTLP_REASONS, decode_otlp
-from shiftsieve.stream.readers import InputError
+from shiftsieve.stream.lines import InputError
 from shiftsieve.stream.replay import replay
 from shiftsieve.stream.samples import REJECT_REASONS, SAMPLE_REASONS, Sample, SampleAssembler, decode_sample
 from shiftsieve.stream.service import Service

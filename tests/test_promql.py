@@ -20,7 +20,8 @@ from shiftsieve.stream.assemble import metric_labels
 from shiftsieve.stream.cli import EXIT_USAGE, main
 from shiftsieve.stream.decode import DecodeLimits, Vector
 from shiftsieve.stream.promql import UNNAMED, query_range_records
-from shiftsieve.stream.readers import InputError, Rejected, open_records
+from shiftsieve.stream.lines import InputError, Rejected
+from shiftsieve.stream.readers import open_records
 from shiftsieve.stream.samples import Sample, SampleAssembler
 
 # The range-query example of the Prometheus HTTP API documentation

@@ -15,13 +15,8 @@ from hypothesis import strategies as st
 
 from shiftsieve.stream import decode, readers
 from shiftsieve.stream.decode import DecodeLimits, Vector, decode_vector
-from shiftsieve.stream.readers import (
-    DeadLetterWriter,
-    InputError,
-    Rejected,
-    input_size,
-    open_records,
-)
+from shiftsieve.stream.lines import InputError, Rejected
+from shiftsieve.stream.readers import DeadLetterWriter, input_size, open_records
 
 TS = 1780000000.0
 

@@ -22,9 +22,9 @@ from pathlib import Path
 
 import pytest
 
-from shiftsieve.stream.compare import compare_methods
+from shiftsieve.stream.evaluate import compare_methods
 from shiftsieve.stream.config import load_config
-from shiftsieve.stream.evaluate import load_labels
+from shiftsieve.stream.labels import load_labels
 
 DATA = Path(__file__).resolve().parent / "data" / "asd"
 

@@ -15,7 +15,8 @@ from scipy.stats import norm
 from shiftsieve.stream import report
 from shiftsieve.stream.cli import EXIT_USAGE, main
 from shiftsieve.stream.config import load_config
-from shiftsieve.stream.evaluate import evaluate, load_events, load_labels
+from shiftsieve.stream.labels import load_labels
+from shiftsieve.stream.scoring import load_events, score_events
 from shiftsieve.stream.replay import replay
 from shiftsieve.stream.report import (SHIFT, EntityTrace, ReportCollector, ReportInputs, Window, choose_metrics,
                                       entity_view, incident_anchor, incidents_from_events, write_report)
@@ -179,7 +180,7 @@ def test_surge_report_says_nothing_fired(surge_and_bounded, tmp_path):
     labels = load_labels(DATA / "surge.labels.json")
     assert events == []   # the labels say no alert is correct here
     index = write_report(tmp_path / "surge", free, ReportInputs("surge", events, labels=labels,
-                                                                evaluation=evaluate(events, labels)))
+                                                                evaluation=score_events(events, labels)))
     page = _parse(index)
     text = index.read_text(encoding="utf-8")
     assert "Nothing fired." in text

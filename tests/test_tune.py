@@ -12,7 +12,8 @@ from scipy.stats import binom
 import shiftsieve.stream.tune as tune_module
 from shiftsieve.stream.cli import EXIT_USAGE, main
 from shiftsieve.stream.config import load_config
-from shiftsieve.stream.evaluate import load_labels, predicted_incidents
+from shiftsieve.stream.labels import load_labels
+from shiftsieve.stream.scoring import predicted_incidents
 from shiftsieve.stream.replay import replay
 from shiftsieve.stream.tune import (EXIT_NOTHING_FITS, TuneError, format_tuning, toml_fragment, tune,
                                     with_settings)

@@ -23,8 +23,9 @@ def replay_with_report(path: str | Path, config: "Config", *, directory: str | P
     the replay, then the page.  With labels: the labelled windows, the incident-level scores and
     the method comparison (:mod:`..compare`); with a budget: the recommended settings (:mod:`..tune`).
     Every argument is checked before the replay runs, so a mistake costs no waiting."""
-    from ..compare import compare_methods
-    from ..evaluate import evaluate, load_labels
+    from ..evaluate import compare_methods
+    from ..labels import load_labels
+    from ..scoring import score_events
     from ..replay import replay
     from ..tune import TuneError, format_tuning, parse_time, toml_fragment, tune
 
@@ -43,7 +44,7 @@ def replay_with_report(path: str | Path, config: "Config", *, directory: str | P
     inputs = ReportInputs(title=f"Incident review: {Path(path).name}", events=events,
                           summary=f"{Path(path).name}: {summary.format()}", labels=labels)
     if labels is not None:
-        inputs.evaluation = evaluate(events, labels, vectors=summary.vectors)
+        inputs.evaluation = score_events(events, labels, vectors=summary.vectors)
         inputs.comparison = compare_methods(path, config, labels)
     if budget_per_day is not None:
         try:

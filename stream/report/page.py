@@ -14,7 +14,8 @@ import numpy as np
 
 from ..timefmt import rfc3339
 from ..timefmt import human_duration
-from ..evaluate import Evaluation, Labels
+from ..labels import Labels
+from ..scoring import Evaluation
 from .collector import EntityTrace, ReportCollector
 from .directory import MARKER, prepare_directory
 from .figures import draw_heatmap, draw_traces, short_name

@@ -9,7 +9,7 @@ from typing import Iterable, Sequence
 
 import numpy as np
 
-from ..evaluate import Labels
+from ..labels import Labels
 from .collector import EntityTrace
 
 

@@ -10,7 +10,7 @@ from typing import Any, Iterable, Sequence
 import numpy as np
 
 from ..timefmt import rfc3339
-from ..evaluate import Evaluation
+from ..scoring import Evaluation
 from .summary import IncidentSummary
 
 
