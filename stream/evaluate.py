@@ -277,8 +277,14 @@ def _shiftsieve(vectors: list[Vector], config: Config) -> list[dict]:
 def compare_methods(path: str | Path, config: Config, labels: Labels, *,
                     methods: Sequence[str] | None = None) -> list[MethodScore]:
     """Run each method on the input at ``path``, score it against ``labels``; rows in ``methods`` order."""
+    return compare_vectors(_load(path, config), config, labels, methods=methods)
+
+
+def compare_vectors(vectors: list[Vector], config: Config, labels: Labels, *, methods: Sequence[str] | None = None,
+                    shiftsieve_run: tuple[list[dict], float] | None = None) -> list[MethodScore]:
+    """:func:`compare_methods` on vectors already read; ``shiftsieve_run`` is the engine's events on
+    them and its seconds when a replay already produced them (the report: one read, one run)."""
     chosen = check_methods(list(METHODS if methods is None else methods))
-    vectors = _load(path, config)
     by_entity = _in_order(vectors)
     timestamps = _timestamps(by_entity)
     count = sum(ts.size for ts in timestamps.values())
@@ -287,9 +293,13 @@ def compare_methods(path: str | Path, config: Config, labels: Labels, *,
     rows = []
     for name in chosen:
         started = time.perf_counter()
-        events = _shiftsieve(vectors, config) if name == "shiftsieve" else _BASELINES[name](entities, config)
-        seconds = time.perf_counter() - started
-        rows.append(MethodScore(name, LOCALISES[name], score_events(events, labels, vectors=count, timestamps=timestamps),
+        if name == "shiftsieve" and shiftsieve_run is not None:
+            events, seconds = shiftsieve_run
+        else:
+            events = _shiftsieve(vectors, config) if name == "shiftsieve" else _BASELINES[name](entities, config)
+            seconds = time.perf_counter() - started
+        rows.append(MethodScore(name, LOCALISES[name],
+                                score_events(events, labels, vectors=count, timestamps=timestamps),
                                 count / seconds if seconds > 0 else float("inf"), seconds))
     return rows
 

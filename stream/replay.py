@@ -14,9 +14,10 @@ import time
 from contextlib import ExitStack
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TextIO
+from typing import Callable, TextIO
 
 from .config import Config
+from .decode import Vector
 from .engine import BatchObserver, Engine, EventSink
 from .events import EventFileWriter
 from .lines import InputError, Rejected
@@ -94,11 +95,13 @@ def open_input(path: str | Path, config: Config) -> RecordStream:
 
 def replay(path: str | Path, config: Config, *, events_path: str | None = None,
            dead_letter_path: str | None = None, sinks: list[EventSink] | None = None,
-           progress: bool = True, observers: list[BatchObserver] | None = None) -> ReplaySummary:
+           progress: bool = True, observers: list[BatchObserver] | None = None,
+           vector_sink: Callable[[Vector], None] | None = None) -> ReplaySummary:
     """Replay one file through the pipeline (:mod:`.pipeline`); raises :class:`InputError` when the
     input as a whole is unusable.
 
-    ``observers`` see every scored batch (:data:`.engine.BatchObserver`), e.g. the report's collector.
+    ``observers`` see every scored batch (:data:`.engine.BatchObserver`), e.g. the report's collector;
+    ``vector_sink`` gets every vector the engine accepted (the report compares methods on them).
     """
     path = Path(path)
     started = time.perf_counter()
@@ -112,7 +115,8 @@ def replay(path: str | Path, config: Config, *, events_path: str | None = None,
         if events_path:
             all_sinks.append(stack.enter_context(EventFileWriter(events_path)))
         engine = Engine.from_config(config, sinks=all_sinks, observers=observers or ())
-        pipeline = Pipeline(engine, config, reject_sinks=reject_sinks)
+        admitted = None if vector_sink is None else (lambda vector, position, partition: vector_sink(vector))
+        pipeline = Pipeline(engine, config, reject_sinks=reject_sinks, admitted=admitted)
         bar = Progress(input_size(path) if progress else None)
         count = 0
         for record in records:

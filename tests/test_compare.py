@@ -1,4 +1,4 @@
-"""`shiftsieve evaluate INPUT LABELS`: shiftsieve against the baselines (stream/compare.py), scored
+"""`shiftsieve evaluate INPUT LABELS`: shiftsieve against the baselines (stream/evaluate.py), scored
 against the bundled incidents' labels files (the generator's planted ground truth)."""
 
 import json
@@ -6,8 +6,9 @@ import json
 import pytest
 
 from shiftsieve.stream.cli import main
-from shiftsieve.stream.evaluate import METHODS, compare_methods, format_comparison
 from shiftsieve.stream.config import load_config
+from shiftsieve.stream.evaluate import METHODS, compare_methods, compare_vectors, format_comparison
+from shiftsieve.stream.replay import replay
 from shiftsieve.stream.demo import scenarios
 from shiftsieve.stream.labels import EvaluationError, load_labels
 
@@ -123,3 +124,18 @@ def test_cli_errors_are_one_line_with_exit_2(tmp_path, capsys, args, message):
     assert main(["evaluate", *[real.get(a, a) for a in args]]) == 2
     err = capsys.readouterr().err.strip()
     assert err.startswith("shiftsieve: error:") and message in err and "\n" not in err
+
+
+def test_one_replay_serves_the_comparison(single_shift):
+    """The report compares on the vectors its replay read and reuses its events: the scores must be
+    those of the separate comparison run (times aside: they measure different things)."""
+    data, labels = _files("single_shift")
+    config = load_config(None)
+    events, vectors = [], []
+    summary = replay(data, config, sinks=[events.append], vector_sink=vectors.append, progress=False)
+    rows = compare_vectors(vectors, config, load_labels(labels), shiftsieve_run=(events, summary.seconds))
+
+    def scores(row):
+        return {k: v for k, v in row.to_dict().items() if k not in ("seconds", "vectors_per_second")}
+    assert [scores(r) for r in rows] == [scores(r) for r in single_shift]
+    assert rows[0].seconds == summary.seconds

@@ -12,6 +12,7 @@ from .page import ReportInputs, write_report
 
 if TYPE_CHECKING:
     from ..config import Config
+    from ..decode import Vector
     from ..replay import ReplaySummary
 
 
@@ -21,12 +22,12 @@ def replay_with_report(path: str | Path, config: "Config", *, directory: str | P
                        progress: bool = True) -> tuple["ReplaySummary", Path]:
     """``shiftsieve replay INPUT --events OUT --report DIR [--labels L] [--budget B] [--quiet-until TS]``:
     the replay, then the page.  With labels: the labelled windows, the incident-level scores and
-    the method comparison (:mod:`..compare`); with a budget: the recommended settings (:mod:`..tune`).
+    the method comparison (:mod:`..evaluate`, on the vectors this replay read); with a budget: the recommended settings (:mod:`..tune`).
     Every argument is checked before the replay runs, so a mistake costs no waiting."""
-    from ..evaluate import compare_methods
+    from ..evaluate import compare_vectors
     from ..labels import load_labels
-    from ..scoring import score_events
     from ..replay import replay
+    from ..scoring import score_events
     from ..tune import TuneError, format_tuning, parse_time, toml_fragment, tune
 
     if quiet_until is not None and budget_per_day is None:
@@ -39,13 +40,16 @@ def replay_with_report(path: str | Path, config: "Config", *, directory: str | P
         raise ReportError(str(exc)) from None
     collector = ReportCollector()
     events: list[dict] = []
+    vectors: list[Vector] = []   # one read of the input serves the page and the comparison
     summary = replay(path, config, events_path=events_path, dead_letter_path=dead_letter_path,
-                     sinks=[events.append], observers=[collector], progress=progress)
+                     sinks=[events.append], observers=[collector], progress=progress,
+                     vector_sink=vectors.append if labels is not None else None)
     inputs = ReportInputs(title=f"Incident review: {Path(path).name}", events=events,
                           summary=f"{Path(path).name}: {summary.format()}", labels=labels)
     if labels is not None:
         inputs.evaluation = score_events(events, labels, vectors=summary.vectors)
-        inputs.comparison = compare_methods(path, config, labels)
+        inputs.comparison = compare_vectors(vectors, config, labels, shiftsieve_run=(events, summary.seconds))
+        vectors.clear()
     if budget_per_day is not None:
         try:
             result = tune(path, config, budget_per_day=budget_per_day, quiet_until=quiet, labels=labels)

@@ -90,12 +90,14 @@ def evaluation_html(ev: Evaluation) -> str:
 
 
 def comparison_html(rows: Sequence[Any]) -> str:
-    """One line per method: ``rows`` are :func:`..compare.compare_methods`' ``MethodScore`` rows."""
+    """One line per method: ``rows`` are :func:`..evaluate.compare_vectors`' ``MethodScore`` rows."""
     body = [[escape(str(r.method)), "yes" if r.localises else "no", f"{r.evaluation.precision:.2f}",
              f"{r.evaluation.recall:.2f}", f"{r.evaluation.f1:.2f}",
              format_number(r.evaluation.localisation, ".2f") if r.localises else "\u2013",
              "\u2013" if r.evaluation.delay_mean_seconds is None else f"{r.evaluation.delay_mean_seconds:+.0f} s",
              f"{r.evaluation.false_alerts_per_10k:.2f}", f"{r.vectors_per_second:,.0f}"] for r in rows]
-    return ("<p>The same input and labels through each method (incident-level scores).</p>"
+    return ("<p>The same input and labels through each method (incident-level scores). shiftsieve's "
+            "vectors/s is the replay's own, reading the input and collecting this page included; the "
+            "others' count their model alone.</p>"
             + html_table(["method", "names metrics", "precision", "recall", "F1", "localisation", "mean delay",
                           "false alerts / 10k", "vectors/s"], body, numeric=tuple(range(2, 9))))
