@@ -22,7 +22,7 @@ from shiftsieve.models.detector import DetectorConfig
 
 from .assemble import MetricRules
 from .decode import DecodeLimits
-from .kafka import SASL_MECHANISMS, SECURITY_PROTOCOLS, KafkaSettings, parse_kafka_url
+from .kafka import SASL_MECHANISMS, SECURITY_PROTOCOLS, KafkaSettings, check_topic, parse_kafka_url
 from .schema import (ENV_PREFIX, ConfigError, Range, Setting, coerce, derive_schema, parse_env, section_types,
                      setting, toml_value)
 
@@ -58,9 +58,8 @@ def _api_version(v: Any) -> bool:
 
 
 def _kafka_topic_or_empty(v: Any) -> bool:
-    # Kafka's own topic-name rule (1-249 of A-Z a-z 0-9 . _ -, not . or ..), as kafka.py checks it
-    # when the sink sends: a bad name fails here, at `config check`, not at the first alert.
-    from .kafka import check_topic  # noqa: PLC0415  (the kafka package imports kafka-python lazily: cheap)
+    # Kafka's own topic-name rule (1-249 of A-Z a-z 0-9 . _ -, not . or ..), as the kafka package
+    # checks it when the sink sends: a bad name fails here, at `config check`, not at the first alert.
     if v == "":
         return True
     try:
@@ -377,7 +376,7 @@ def _read_file(path: Path, values: dict[tuple[str, str], Any], sources: dict[tup
 def _check_kafka(values: dict[tuple[str, str], Any], sources: dict[tuple[str, str], str]) -> None:
     """The [kafka] files and cross-field rules, checked here so `config check` reports them.
 
-    The rules are the ones `KafkaSettings` enforces (stream/kafka.py) when `shiftsieve run` builds
+    The rules are the ones `KafkaSettings` enforces (stream/kafka/settings.py) when `shiftsieve run` builds
     its clients; there they surface as a ValueError only when the service starts. The password
     file is read here: a missing or unreadable one is a one-line error naming the key, and its
     content becomes the effective ``kafka.sasl_password`` (masked by :func:`render`).

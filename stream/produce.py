@@ -272,7 +272,7 @@ class _KafkaWriter:
         self.kafka = import_kafka()
         self.topic, self.where = topic, ",".join(hosts)
         kwargs = settings.producer_kwargs()   # max_block_ms bounds every wait for metadata
-        if settings.api_version is None and "bootstrap_timeout_ms" in self.kafka.KafkaProducer.DEFAULT_CONFIG:
+        if settings.api_version is None:   # with api_version=auto the constructor talks to the broker
             kwargs["bootstrap_timeout_ms"] = 5000
         try:
             self.producer = self.kafka.KafkaProducer(**kwargs)

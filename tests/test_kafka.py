@@ -354,6 +354,7 @@ def test_parse_kafka_url_good(url, expected):
     ("kafka://h:9092?group=g", "missing /TOPIC"),
     ("kafka://h:9092/?group=g", "missing /TOPIC"),
     ("kafka://h:9092/a/b?group=g", "bad topic"),
+    ("kafka://h:9092/t%0A?group=g", "bad topic"),   # "$" of a ^...$ pattern matched before the newline
     ("kafka://h:9092/t", "missing ?group"),
     ("kafka://h:9092/t?group=", "missing ?group"),
     ("kafka://h:9092/t?group=g&group=h", "more than once"),

@@ -18,16 +18,17 @@ SECURITY_PROTOCOLS = ("PLAINTEXT", "SSL", "SASL_PLAINTEXT", "SASL_SSL")
 SASL_MECHANISMS = ("PLAIN", "SCRAM-SHA-256", "SCRAM-SHA-512")
 CLIENT_ID = "shiftsieve"
 
-_TOPIC_RE = re.compile(r"^[A-Za-z0-9._-]{1,249}$")
-_HOST_RE = re.compile(r"^(\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9._-]+):(\d{1,5})$")
+# fullmatch, not ^...$: "$" also matches before a final newline, which would let "topic\n" through.
+_TOPIC_RE = re.compile(r"[A-Za-z0-9._-]{1,249}")
+_HOST_RE = re.compile(r"(\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9._-]+):(\d{1,5})")
 
 
 def _valid_topic(topic: Any) -> bool:
-    return isinstance(topic, str) and bool(_TOPIC_RE.match(topic)) and topic not in (".", "..")
+    return isinstance(topic, str) and bool(_TOPIC_RE.fullmatch(topic)) and topic not in (".", "..")
 
 
 def _valid_host(hostport: str) -> bool:
-    m = _HOST_RE.match(hostport)
+    m = _HOST_RE.fullmatch(hostport)
     return bool(m) and 1 <= int(m.group(2)) <= 65535
 
 
