@@ -75,8 +75,8 @@ class MetricRules:
         return [label for label, _ in chosen], [np.array(idx, dtype=np.int64) for _, idx in chosen]
 
 
-class EntityStream:
-    """One entity: its metric names, its detector, and the name -> column mapping."""
+class EntityModel:
+    """One entity's model: its metric names and columns, its detector, and what assembling its vectors needs."""
 
     def __init__(self, entity: str, rules: MetricRules, config: DetectorConfig) -> None:
         self.entity = entity
@@ -104,7 +104,7 @@ class EntityStream:
                 "detector": self.detector.to_state()}
 
     @classmethod
-    def from_state(cls, state: dict, rules: MetricRules, config: DetectorConfig) -> EntityStream:
+    def from_state(cls, state: dict, rules: MetricRules, config: DetectorConfig) -> EntityModel:
         """Inverse of :meth:`to_state`, with today's ``rules`` and detector settings ``config``."""
         stream = cls(state["entity"], rules, config)
         stream.detector = EntityDetector.from_state(state["detector"], config)

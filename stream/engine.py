@@ -24,7 +24,7 @@ import numpy as np
 from shiftsieve.models.batch_result import BatchResult
 from shiftsieve.models.detector import DetectorConfig
 
-from .assemble import EntityStream, MetricRules
+from .assemble import EntityModel, MetricRules
 from .config import Config
 from .decode import Vector
 from .events import events_from_transitions, window_metrics
@@ -33,7 +33,7 @@ from .registry import EntityRecord, EntityRegistry, IncidentWindow
 EventSink = Callable[[dict], None]
 #: Called after each successfully scored batch with (stream, ts, X, result), result's columns
 #: matching stream.names (e.g. the incident-review report); nothing runs when there are none.
-BatchObserver = Callable[[EntityStream, np.ndarray, np.ndarray, BatchResult], None]
+BatchObserver = Callable[[EntityModel, np.ndarray, np.ndarray, BatchResult], None]
 
 
 @dataclass
@@ -78,7 +78,7 @@ class IncidentWindows:
 
     def localise(self, record: EntityRecord, X: np.ndarray, result: BatchResult) -> list[dict | None] | None:
         """``window_metrics`` for each of the batch's transitions (None: nothing to add to any)."""
-        stream = record.stream
+        stream = record.model
         detector = stream.detector
         window, tail = record.window, record.tail
         record.window = record.tail = None
@@ -129,7 +129,7 @@ class Engine:
         self.windows = IncidentWindows(window_rows, lead=detector_config.decision.confirm_m - 1) \
             if window_rows else None
         self.registry = EntityRegistry()
-        self.entities = self.registry.streams   # entity -> EntityStream, read-only
+        self.entities = self.registry.models   # entity -> EntityModel, read-only
         self.counts = EngineCounts()
         self.rewarmed: list[tuple[str, str]] = []   # (entity, why) since the caller last cleared it
         self.queued = 0   # vectors fed and not yet run
@@ -152,11 +152,11 @@ class Engine:
             if len(self.registry) >= self.max_entities:
                 self.counts.rejected_entity_limit += 1
                 return "entity_limit"
-            record = self.registry.add(EntityStream(vector.entity, self.rules, self.detector_config))
+            record = self.registry.add(EntityModel(vector.entity, self.rules, self.detector_config))
         pending = record.pending
         if not pending:   # once per batch, not per vector: batches are how recency is counted
             self.registry.touch(record)
-        last = pending[-1].ts if pending else record.stream.last_ts
+        last = pending[-1].ts if pending else record.model.last_ts
         if vector.ts <= last:   # duplicates and late samples would corrupt the baseline
             self.counts.rejected_out_of_order += 1
             return "out_of_order"
@@ -166,7 +166,7 @@ class Engine:
             self._run(record)
         return None
 
-    def adopt(self, stream: EntityStream, covered: dict[str, int] | None = None) -> EntityRecord:
+    def adopt(self, stream: EntityModel, covered: dict[str, int] | None = None) -> EntityRecord:
         """Take over an entity restored from a snapshot that includes the ``covered`` offsets."""
         return self.registry.add(stream, covered)
 
@@ -182,7 +182,7 @@ class Engine:
                 self._run(record)
 
     def _run(self, record: EntityRecord) -> None:
-        stream = record.stream
+        stream = record.model
         vectors, record.pending = record.pending, []
         self.queued -= len(vectors)
         X, ts = stream.assemble(vectors)
@@ -222,7 +222,7 @@ class Engine:
 
     def _rewarm(self, record: EntityRecord, why: str) -> None:
         """A model that went bad is never scored with: the entity warms up again, and says so."""
-        record.stream.rewarm()
+        record.model.rewarm()
         IncidentWindows.forget(record)
         self.counts.rewarmed += 1
         self.rewarmed.append((record.entity, why))

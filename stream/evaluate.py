@@ -43,7 +43,7 @@ from shiftsieve.models.baselines import (
 from shiftsieve.models.decision import AlertTracker
 from shiftsieve.models.normaliser import log_scaled, symexp
 
-from .assemble import EntityStream
+from .assemble import EntityModel
 from .config import Config
 from .decode import Vector
 from .engine import Engine
@@ -85,7 +85,7 @@ class MethodScore:
 
 @dataclass
 class _Entity:
-    stream: EntityStream   # names and the column -> name mapping used by the events
+    stream: EntityModel   # names and the column -> name mapping used by the events
     X: np.ndarray          # (T, n) raw values, NaN = missing
     ts: np.ndarray
     log_mask: np.ndarray
@@ -151,7 +151,7 @@ def _entities(by_entity: dict[str, list[Vector]], engine: Engine, config: Config
     """Per entity, the dense matrix of its vectors, its warm-up and its history (module docstring)."""
     out = []
     for entity, own in by_entity.items():
-        stream = EntityStream(entity, engine.rules, engine.detector_config)
+        stream = EntityModel(entity, engine.rules, engine.detector_config)
         X, ts = stream.assemble(own)
         warmup = min(config.model.warmup, X.shape[0])
         before = int(np.count_nonzero(ts < labels.scored_after(entity)))

@@ -35,7 +35,7 @@ from shiftsieve.models.mmv import rank_rows
 if TYPE_CHECKING:
     from shiftsieve.models.window import WindowLocalisation
 
-    from .assemble import EntityStream
+    from .assemble import EntityModel
 
 
 def incident_id(entity: str, onset_ts: float) -> str:
@@ -49,7 +49,7 @@ def _number(x: float, digits: int) -> float | None:
     return float(f"{x:.{digits}g}")
 
 
-def _metric_entry(stream: "EntityStream", names: list[str], column: int, shift: float, value: float,
+def _metric_entry(stream: "EntityModel", names: list[str], column: int, shift: float, value: float,
                   expected: float) -> dict:
     entry = {"name": names[column], "shift_sigma": round(float(shift), 2),
              "value": _number(float(value), 6), "expected": _number(float(expected), 6)}
@@ -71,7 +71,7 @@ def window_metrics(localisation: "WindowLocalisation", names: list[str], top: in
     return field
 
 
-def events_from_transitions(stream: "EntityStream", transitions: list[Transition], ts: np.ndarray,
+def events_from_transitions(stream: "EntityModel", transitions: list[Transition], ts: np.ndarray,
                             windows: list[dict | None] | None = None) -> Iterator[dict]:
     """One event per transition, metrics ranked by |shift_sigma| (descending, then by name);
     ``windows``, when given, holds each transition's ``window_metrics`` (None: none)."""

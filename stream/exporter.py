@@ -113,7 +113,7 @@ class Exporter:
     def refresh(self, records: Iterable[EntityRecord]) -> None:
         """Bring the gauges of ``records`` (entities that just processed vectors) up to date."""
         for record in records:
-            stream = record.stream
+            stream = record.model
             det = stream.detector
             if record.exported is None:
                 if not self._room():

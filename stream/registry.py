@@ -1,7 +1,7 @@
 """The entities a process holds, one record each: adding, evicting, snapshotting and forgetting
 an entity are one call each, and nothing about an entity lives anywhere else.
 
-A record holds the entity's model (:class:`.assemble.EntityStream`), the vectors fed and not yet
+A record holds the entity's model (:class:`.assemble.EntityModel`), the vectors fed and not yet
 run, where its vectors come from (partition) and what its restored snapshot already includes
 (covered offsets), its open incident's window of residual rows, and which of its series the
 exporter publishes.  The registry keeps the records in the order they arrived (the order partial
@@ -19,7 +19,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .assemble import EntityStream
+from .assemble import EntityModel
 from .decode import Vector
 
 
@@ -52,7 +52,7 @@ class IncidentWindow:
 class EntityRecord:
     """Everything this process holds for one entity."""
 
-    stream: EntityStream                                      # its metric layout and model
+    model: EntityModel                                       # its metric layout and detector
     pending: list[Vector] = field(default_factory=list)       # fed, not yet run
     partition: str = ""                                       # "topic/partition" its vectors come from
     covered: dict[str, int] = field(default_factory=dict)     # offsets its restored snapshot includes
@@ -62,17 +62,17 @@ class EntityRecord:
 
     @property
     def entity(self) -> str:
-        return self.stream.entity
+        return self.model.entity
 
 
-class StreamsView(Mapping[str, EntityStream]):
-    """entity -> its model holder, read-only (what reports, tests and the exporter look at)."""
+class ModelsView(Mapping[str, EntityModel]):
+    """entity -> its model, read-only (what reports, tests and the exporter look at)."""
 
     def __init__(self, records: dict[str, EntityRecord]) -> None:
         self._records = records
 
-    def __getitem__(self, entity: str) -> EntityStream:
-        return self._records[entity].stream
+    def __getitem__(self, entity: str) -> EntityModel:
+        return self._records[entity].model
 
     def __iter__(self) -> Iterator[str]:
         return iter(self._records)
@@ -87,7 +87,7 @@ class EntityRegistry:
     def __init__(self) -> None:
         self._records: dict[str, EntityRecord] = {}
         self._recent: dict[str, None] = {}   # the same entities, least recently fed first
-        self.streams = StreamsView(self._records)
+        self.models = ModelsView(self._records)
         self.ran: set[str] = set()       # processed vectors since the caller last cleared it (gauges)
         self.unsaved: set[str] = set()   # changed since its last snapshot
         self.on_remove: list[Callable[[EntityRecord], None]] = []
@@ -107,11 +107,11 @@ class EntityRegistry:
     def records(self) -> Iterator[EntityRecord]:
         return iter(self._records.values())
 
-    def add(self, stream: EntityStream, covered: dict[str, int] | None = None) -> EntityRecord:
+    def add(self, model: EntityModel, covered: dict[str, int] | None = None) -> EntityRecord:
         """A new record (replacing any record of the same entity), the most recent."""
-        self.remove(stream.entity)
-        record = self._records[stream.entity] = EntityRecord(stream, covered=dict(covered or {}))
-        self._recent[stream.entity] = None
+        self.remove(model.entity)
+        record = self._records[model.entity] = EntityRecord(model, covered=dict(covered or {}))
+        self._recent[model.entity] = None
         return record
 
     def touch(self, record: EntityRecord) -> None:

@@ -217,7 +217,7 @@ class Service:
         positions = self._positions()
         for entity in registry.least_recent(limit):
             if self.state is not None and entity in registry.unsaved:
-                self.state.save(registry[entity].stream, positions)
+                self.state.save(registry[entity].model, positions)
             self.engine.drop(entity)
             self.exporter.evicted.inc()
 
@@ -256,7 +256,7 @@ class Service:
         registry = self.engine.registry
         for entity in sorted(registry.unsaved):
             record = registry[entity]
-            self.state.save(record.stream, positions)
+            self.state.save(record.model, positions)
             record.covered = positions
         registry.unsaved.clear()
         self._snapshot_at = time.monotonic()

@@ -1,4 +1,4 @@
-"""Per-entity snapshots: one :class:`EntityStream`'s whole model state as versioned, checksummed bytes.
+"""Per-entity snapshots: one :class:`EntityModel`'s whole model state as versioned, checksummed bytes.
 
 A snapshot holds everything an entity has learned (normaliser, baseline, residual scales,
 warm start, alert states, the open incident, warm-up rows, probation sums, metric names and
@@ -63,7 +63,7 @@ import numpy as np
 
 from shiftsieve.models.detector import DetectorConfig
 
-from .assemble import EntityStream, MetricRules
+from .assemble import EntityModel, MetricRules
 
 __all__ = ["SNAPSHOT_VERSION", "SettingsChanged", "SnapshotError", "StateDirectory", "restore_entity",
            "snapshot_entity"]
@@ -128,7 +128,7 @@ class SettingsChanged(UserWarning):
 
 
 # -- writing --------------------------------------------------------------------------------------
-def snapshot_entity(stream: EntityStream, offsets: dict[str, int] | None = None) -> bytes:
+def snapshot_entity(stream: EntityModel, offsets: dict[str, int] | None = None) -> bytes:
     """Serialise one entity, with the input ``offsets`` it covers (``{"topic/partition": next_offset}``)."""
     offsets = dict(offsets or {})
     if not all(isinstance(k, str) and type(v) is int and v >= 0 for k, v in offsets.items()):
@@ -162,7 +162,7 @@ def _settings(config: DetectorConfig, rules: MetricRules) -> dict:
 
 
 def _arrays(state: dict) -> dict[str, np.ndarray]:
-    """The arrays of a stream's :meth:`EntityStream.to_state` under their snapshot names (the rest,
+    """The arrays of a stream's :meth:`EntityModel.to_state` under their snapshot names (the rest,
     such as the incident and the sample count, is metadata)."""
     detector = state["detector"]
     groups = detector["groups"]
@@ -177,7 +177,7 @@ def _arrays(state: dict) -> dict[str, np.ndarray]:
 
 
 # -- reading --------------------------------------------------------------------------------------
-def restore_entity(data: bytes, rules: MetricRules, config: DetectorConfig) -> tuple[EntityStream, dict[str, int]]:
+def restore_entity(data: bytes, rules: MetricRules, config: DetectorConfig) -> tuple[EntityModel, dict[str, int]]:
     """Inverse of :func:`snapshot_entity`: the stream and its offsets, or :class:`SnapshotError`.
 
     ``rules`` and ``config`` are today's settings; if they differ from the snapshot's, a
@@ -271,7 +271,7 @@ def _indices(value: Any, key: str, limit: int) -> set[int]:
 
 
 def _build(meta: dict, arrays: dict[str, np.ndarray], rules: MetricRules,
-           config: DetectorConfig) -> tuple[EntityStream, dict[str, int]]:
+           config: DetectorConfig) -> tuple[EntityModel, dict[str, int]]:
     entity = _field(meta, "entity", str)
     names = _strings(meta.get("names"), "names")
     group_labels = _strings(meta.get("group_labels"), "group_labels")
@@ -331,7 +331,7 @@ def _build(meta: dict, arrays: dict[str, np.ndarray], rules: MetricRules,
     state = {"entity": entity, "names": names, "group_labels": group_labels, "labels": labels, "last_ts": last_ts,
              "last_residual_norm": residual_norm, "ignored_metrics": ignored, "last_seen": arrays["stream.last_seen"],
              "detector": detector}
-    return EntityStream.from_state(state, rules, config), offsets
+    return EntityModel.from_state(state, rules, config), offsets
 
 
 def _part(arrays: dict[str, np.ndarray], part: str) -> dict[str, np.ndarray]:
@@ -369,7 +369,7 @@ class StateDirectory:
         stem = f"e-{raw.hex()}" if 2 * len(raw) <= self.MAX_HEX else f"h-{hashlib.sha256(raw).hexdigest()}"
         return self.path / (stem + self.SUFFIX)
 
-    def save(self, stream: EntityStream, offsets: dict[str, int] | None = None) -> Path:
+    def save(self, stream: EntityModel, offsets: dict[str, int] | None = None) -> Path:
         """Write ``stream``'s snapshot: temporary file, fsync, rename over the old one, fsync the directory."""
         target = self.file_for(stream.entity)
         data = snapshot_entity(stream, offsets)
@@ -391,7 +391,7 @@ class StateDirectory:
         return target
 
     def load(self, entity: str, rules: MetricRules,
-             config: DetectorConfig) -> tuple[EntityStream, dict[str, int]] | None:
+             config: DetectorConfig) -> tuple[EntityModel, dict[str, int]] | None:
         """``entity``'s stream and offsets, ``None`` without a snapshot, SnapshotError naming a bad file."""
         path = self.file_for(entity)
         try:
@@ -438,7 +438,7 @@ class StateDirectory:
         return entity
 
     def _restore(self, path: Path, data: bytes, rules: MetricRules,
-                 config: DetectorConfig) -> tuple[EntityStream, dict[str, int]]:
+                 config: DetectorConfig) -> tuple[EntityModel, dict[str, int]]:
         try:
             stream, offsets = restore_entity(data, rules, config)
         except SnapshotError as exc:

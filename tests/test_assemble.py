@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from shiftsieve.stream.assemble import EntityStream, MetricRules, metric_labels
+from shiftsieve.stream.assemble import EntityModel, MetricRules, metric_labels
 from shiftsieve.stream.config import load_config
 from shiftsieve.stream.decode import Vector
 from shiftsieve.stream.engine import Engine
@@ -28,7 +28,7 @@ def test_groups_from_patterns_and_labels_and_log_scale_on_base_names():
 
 def test_assembly_maps_names_to_columns_and_admits_new_ones():
     from shiftsieve.models.detector import DetectorConfig
-    stream = EntityStream("e", MetricRules(), DetectorConfig())
+    stream = EntityModel("e", MetricRules(), DetectorConfig())
     vecs = [Vector(1.0, "e", {"a": 1.0, "b": None}, {}), Vector(2.0, "e", {"b": 2.0, "c": 3.0}, {})]
     X, ts = stream.assemble(vecs)
     assert stream.names == ["a", "b", "c"]

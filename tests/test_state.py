@@ -21,7 +21,7 @@ from hypothesis import given, settings, strategies as st
 import shiftsieve.stream.state as state_module
 from shiftsieve.models.decision import FIRING
 from shiftsieve.models.detector import DetectorConfig
-from shiftsieve.stream.assemble import EntityStream, MetricRules
+from shiftsieve.stream.assemble import EntityModel, MetricRules
 from shiftsieve.stream.decode import Vector
 from shiftsieve.stream.events import events_from_transitions
 from shiftsieve.stream.state import (HEADER_SIZE, SNAPSHOT_VERSION, SettingsChanged, SnapshotError, StateDirectory,
@@ -75,7 +75,7 @@ def run(restore=False):
     """Feed VECTORS in batches of SIZES as the engine does; optionally snapshot and restore the
     stream before every batch.  Returns the transitions, events, shifts and full state after
     every batch, and the situations at the cuts."""
-    stream = EntityStream(ENTITY, RULES, CONFIG)
+    stream = EntityModel(ENTITY, RULES, CONFIG)
     transitions, events, shifts, states, seen = [], [], [], [], []
     start = 0
     for size in SIZES:
@@ -158,7 +158,7 @@ def test_snapshot_restore_at_every_batch_boundary_continues_identically():
 
 def test_every_attribute_is_saved_or_derived():
     """A new attribute on a model class must be added to the snapshot (or declared derived here)."""
-    stream = EntityStream(ENTITY, RULES, CONFIG)
+    stream = EntityModel(ENTITY, RULES, CONFIG)
     X, ts = stream.assemble(VECTORS[:300])
     stream.detector.process(X, ts)
     stream.observe(X)
@@ -181,7 +181,7 @@ def test_every_attribute_is_saved_or_derived():
 
 
 def test_open_incident_and_offsets_survive():
-    stream = EntityStream(ENTITY, RULES, CONFIG)
+    stream = EntityModel(ENTITY, RULES, CONFIG)
     start = 0
     for size in SIZES:
         X, ts = stream.assemble(VECTORS[start:start + size])
@@ -198,7 +198,7 @@ def test_open_incident_and_offsets_survive():
 
 
 def test_fresh_stream_round_trips():
-    stream, offsets = restore_entity(snapshot_entity(EntityStream("e", RULES, CONFIG)), RULES, CONFIG)
+    stream, offsets = restore_entity(snapshot_entity(EntityModel("e", RULES, CONFIG)), RULES, CONFIG)
     assert stream.names == [] and stream.last_ts == float("-inf") and offsets == {}
     assert stream.detector.warming_up
 
@@ -206,7 +206,7 @@ def test_fresh_stream_round_trips():
 # -- corruption ---------------------------------------------------------------------------------
 @pytest.fixture(scope="module")
 def snapshot():
-    stream = EntityStream(ENTITY, RULES, CONFIG)
+    stream = EntityModel(ENTITY, RULES, CONFIG)
     X, ts = stream.assemble(VECTORS[:600])
     stream.detector.process(X, ts)
     stream.observe(X)
@@ -323,7 +323,7 @@ def test_other_settings_are_reported_and_incompatible_warmup_refused(snapshot):
         restore_entity(snapshot, RULES, DetectorConfig(warmup=200, false_alarm=1e-2))
     assert caught[0].message.changes == {"detector.false_alarm": (1e-3, 1e-2)}
     assert caught[0].message.entity == ENTITY
-    warming = EntityStream("w", RULES, CONFIG)
+    warming = EntityModel("w", RULES, CONFIG)
     X, ts = warming.assemble(VECTORS[:150])
     warming.detector.process(X, ts)
     with pytest.raises(SnapshotError, match="warm-up rows"), warnings.catch_warnings():
@@ -336,8 +336,8 @@ WEIRD = ["a/b", "..", "../../etc/passwd", "ünï/cødé ✓", "", "x" * 256, "e-
          "\udc80lone surrogate"]
 
 
-def small_stream(entity: str) -> EntityStream:
-    stream = EntityStream(entity, RULES, CONFIG)
+def small_stream(entity: str) -> EntityModel:
+    stream = EntityModel(entity, RULES, CONFIG)
     stream.assemble(VECTORS[:3])
     return stream
 

@@ -38,7 +38,7 @@ from shiftsieve.models.batch_result import BatchResult
 from shiftsieve.models.normaliser import to_metric_units
 
 if TYPE_CHECKING:
-    from ..assemble import EntityStream
+    from ..assemble import EntityModel
 
 #: Channels of a bin, in this order.
 SHIFT, OBSERVED_LO, OBSERVED_HI, EXPECTED, BAND_LO, BAND_HI = range(6)
@@ -175,7 +175,7 @@ class EntityTrace:
         return t, data
 
 
-def batch_rows(stream: "EntityStream", X: np.ndarray, result: BatchResult) -> tuple[slice, np.ndarray]:
+def batch_rows(stream: "EntityModel", X: np.ndarray, result: BatchResult) -> tuple[slice, np.ndarray]:
     """The scored rows of a batch and their channels (CHANNELS, rows, n) in metric units.
 
     Shifts of metrics the detector does not score (not yet ``warmup`` samples, or leverage above
@@ -218,7 +218,7 @@ class ReportCollector:
         self.fired: set[str] = set()
         self.cells = 0
 
-    def __call__(self, stream: "EntityStream", ts: np.ndarray, X: np.ndarray, result: BatchResult) -> None:
+    def __call__(self, stream: "EntityModel", ts: np.ndarray, X: np.ndarray, result: BatchResult) -> None:
         trace = self.traces.get(stream.entity)
         if trace is None:
             trace = self.traces[stream.entity] = EntityTrace(self.max_bins)
