@@ -190,6 +190,9 @@ class SourceSection:
     allowed_lateness_seconds: float = setting(60.0, Range(0, 86400), noun=_SECONDS,
                                               help="how long a step stays open for late samples before its vector "
                                                    "is emitted")
+    poll_seconds: float = setting(0.5, Range(0, 60, lo_open=True), noun=_SECONDS,
+                                  help="longest wait for input in one poll of the source (also bounds how long "
+                                       "SIGTERM takes)")
 
 
 @dataclass(frozen=True)
@@ -235,7 +238,7 @@ class StateSection:
 
 @dataclass(frozen=True)
 class HttpSection:
-    """[http]: the metrics and health endpoints, and the poll cadence."""
+    """[http]: the metrics and health endpoints."""
 
     listen: str = setting("127.0.0.1:9471", allowed="HOST:PORT with a port in 0..65535", check=_listen,
                           help="address of /metrics, /healthz and /readyz (loopback by default: expose it on "
@@ -243,8 +246,6 @@ class HttpSection:
     max_series: int = setting(10_000, Range(10, 10_000_000),
                               help="cap on exported per-entity and per-shift series; the rest are counted as "
                                    "withheld")
-    poll_seconds: float = setting(0.5, Range(0, 60, lo_open=True), noun=_SECONDS,
-                                  help="longest wait for input in one poll (also bounds how long SIGTERM takes)")
 
 
 @dataclass(frozen=True)

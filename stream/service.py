@@ -101,7 +101,7 @@ class Service:
             self.endpoints = Endpoints(self.listen, self.exporter.exposition, lambda: self.ready).start()
             stack.callback(self.endpoints.stop)
             self.ready = not kafka
-            poll = self.config.http.poll_seconds
+            poll = self.config.source.poll_seconds
             max_delay = self.config.engine.max_delay_seconds
             while not self.stopping.is_set():
                 lines = source.poll(poll)

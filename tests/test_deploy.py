@@ -321,8 +321,8 @@ def test_kubernetes_ports_probes_and_security() -> None:
     mounts = {m["mountPath"]: m for m in container["volumeMounts"]}
     assert STATE_DIR in mounts and not mounts[STATE_DIR].get("readOnly")
     assert mounts[str(Path(image_env()["CONFIG"]).parent)]["readOnly"] is True
-    # SIGTERM: one poll (http.poll_seconds) plus flush, snapshots and commit must fit the grace period
-    poll = next(s.default for s in SCHEMA if (s.section, s.key) == ("http", "poll_seconds"))
+    # SIGTERM: one poll (source.poll_seconds) plus flush, snapshots and commit must fit the grace period
+    poll = next(s.default for s in SCHEMA if (s.section, s.key) == ("source", "poll_seconds"))
     assert pod["spec"]["terminationGracePeriodSeconds"] >= 10 * poll
     assert pod["metadata"]["annotations"] == {"prometheus.io/scrape": "true", "prometheus.io/port": str(DEFAULT_PORT),
                                               "prometheus.io/path": "/metrics"}

@@ -569,7 +569,7 @@ def test_replay_csv_counts_add_up(tmp_path: Path, columns: list[str], data: st.D
 # --- 4. the service: consumed == processed + dead-lettered ----------------------------------------------------
 
 def run_service(source: Path, dead: Path) -> Service:
-    config = small_config(http_poll_seconds="0.05", engine_max_delay_seconds="0")
+    config = small_config(source_poll_seconds="0.05", engine_max_delay_seconds="0")
     service = Service(config, source_url=str(source), listen="127.0.0.1:0", dead_letter_path=str(dead))
     failure: list[BaseException] = []
 

@@ -14,7 +14,7 @@ on that broker and one 1-partition topic:
      earliest, no auto-commit, max_poll_records 2000 and the service's fetch
      sizes, kafka.fetch_partition_bytes and fetch_max_wait_ms): the bare consume rate;
   3. runs the real ``Service`` in a thread (defaults: model.warmup 540,
-     engine.batch_size 64, http.poll_seconds 0.5; kafka.api_version 2.5.0)
+     engine.batch_size 64, source.poll_seconds 0.5; kafka.api_version 2.5.0)
      until it has processed all N: vectors/s, its ratio to the bare rate, the
      rate after warm-up (detection mode only) and the CPU the process used;
   4. with the service still running and caught up, a separate producer process
@@ -307,7 +307,7 @@ def run(args: argparse.Namespace, port: int) -> dict:
         busy4 = service.exporter.batch_seconds._sum.get() - busy_before
         lat = np.array(rec.latencies) * 1000
         polls4 = [c for c in rec.calls if c[1] > before]
-        poll_s = config.http.poll_seconds
+        poll_s = config.source.poll_seconds
         res.update(sent_rate=sent["rate"], p50=float(np.percentile(lat, 50)), p99=float(np.percentile(lat, 99)),
                    lat_max=float(lat.max()), lat_n=lat.size, poll_seconds=poll_s,
                    per_poll4=lat.size / max(len(polls4), 1))
@@ -316,7 +316,7 @@ def run(args: argparse.Namespace, port: int) -> dict:
               f"p99 {res['p99']:.1f} ms, max {res['lat_max']:.1f} ms", flush=True)
         print(f"   {len(polls4):,} flushes ({res['per_poll4']:.1f} records per flush, "
               f"{1000 * busy4 / max(len(polls4), 1):.1f} ms processing per flush); "
-              f"http.poll_seconds {poll_s} (the longest a poll waits; it returns as soon as records arrive): "
+              f"source.poll_seconds {poll_s} (the longest a poll waits; it returns as soon as records arrive): "
               f"p99 is {res['p99'] / (1000 * poll_s):.0%} of it", flush=True)
     finally:
         service.stop()
