@@ -39,6 +39,9 @@ _SAMPLES = "a number of samples"
 _SECONDS = "a number of seconds"
 _TOPIC = "a topic name (1-249 of A-Z a-z 0-9 . _ -) or empty"
 
+#: Keys that moved to another section: an old configuration is told where its key went.
+MOVED = {("http", "poll_seconds"): "source.poll_seconds"}
+
 
 def _patterns(v: Any) -> bool:
     return all(isinstance(p, str) and p for p in v)
@@ -350,7 +353,9 @@ def load_config(path: str | os.PathLike | None = None, environ: Mapping[str, str
     unknown = sorted(k for k in environ if k.startswith(ENV_PREFIX) and k not in _ENV_NAMES
                      and k not in NOT_CONFIG_ENV)
     if unknown:
-        raise ConfigError(f"unknown environment variable {unknown[0]} (see `shiftsieve config check`)")
+        moved = next((f"; it is {ENV_PREFIX}{new.replace('.', '_').upper()} now" for (section, key), new in MOVED.items()
+                      if unknown[0] == f"{ENV_PREFIX}{section.upper()}_{key.upper()}"), "")
+        raise ConfigError(f"unknown environment variable {unknown[0]}{moved} (see `shiftsieve config check`)")
     if values[("decision", "confirm_k")] > values[("decision", "confirm_m")]:
         raise ConfigError(f"decision.confirm_k: expected at most decision.confirm_m "
                           f"({values[('decision', 'confirm_m')]}), got {values[('decision', 'confirm_k')]}")
@@ -369,7 +374,8 @@ def _read_file(path: Path, values: dict[tuple[str, str], Any], sources: dict[tup
             setting = _BY_NAME.get((section, key))
             if setting is None:
                 known = sorted(f.name for f in fields(SECTIONS[section]))
-                raise ConfigError(f"{path}: unknown key {section}.{key} (known keys: {', '.join(known)})")
+                moved = f"; it is {MOVED[(section, key)]} now" if (section, key) in MOVED else ""
+                raise ConfigError(f"{path}: unknown key {section}.{key}{moved} (known keys: {', '.join(known)})")
             values[(section, key)] = coerce(setting, value, str(path))
             sources[(section, key)] = str(path)
 

@@ -416,3 +416,12 @@ def test_the_secret_is_not_in_the_repr_of_a_config():
     cfg = load_config(environ={"SHIFTSIEVE_KAFKA_SASL_PASSWORD": "hunter2-not-for-logs"})
     assert cfg.kafka.sasl_password == "hunter2-not-for-logs"
     assert "hunter2" not in repr(cfg) and "hunter2" not in repr(cfg.kafka)
+
+
+def test_a_moved_key_says_where_it_went(tmp_path):
+    path = tmp_path / "old.toml"
+    path.write_text("[http]\npoll_seconds = 0.2\n")
+    with pytest.raises(ConfigError, match=r"unknown key http\.poll_seconds; it is source\.poll_seconds now"):
+        load_config(path, environ={})
+    with pytest.raises(ConfigError, match="SHIFTSIEVE_HTTP_POLL_SECONDS; it is SHIFTSIEVE_SOURCE_POLL_SECONDS now"):
+        load_config(None, environ={"SHIFTSIEVE_HTTP_POLL_SECONDS": "0.2"})
