@@ -2,7 +2,8 @@
 
 ``shiftsieve evaluate INPUT LABELS [--methods a,b]`` loads the replay input once,
 runs each method on it, scores its alert events with :func:`.scoring.score_events`
-and prints one table.  The methods (:mod:`shiftsieve.models.baselines`):
+and prints one table.  The methods (shiftsieve as the engine runs it; the others behind one
+interface, :class:`shiftsieve.models.reference.ReferenceMethod`):
 
 - ``shiftsieve``: the engine, exactly as ``shiftsieve replay`` runs it;
 - ``ewma_zscore``: per-metric exponentially weighted z-score, Gaussian threshold;
@@ -28,20 +29,14 @@ from __future__ import annotations
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable, Sequence
+from typing import Sequence
 
 import numpy as np
 
-from shiftsieve.models.baselines import (
-    EWMAZScore,
-    Flags,
-    HalfSpaceTreesDetector,
-    ewma_zscore_calibrated,
-    pcp_calibrated,
-    pcp_detect,
-)
+from shiftsieve.models.baselines import Flags
 from shiftsieve.models.decision import AlertTracker
 from shiftsieve.models.normaliser import log_scaled, symexp
+from shiftsieve.models.reference import EWMAZScoreMethod, HalfSpaceTreesMethod, PCPMethod, ReferenceMethod
 
 from .assemble import EntityModel
 from .config import Config
@@ -54,9 +49,6 @@ from .replay import open_input
 from .scoring import Evaluation, score_events
 
 METHODS = ("shiftsieve", "ewma_zscore", "ewma_zscore_calibrated", "halfspacetrees", "pcp", "pcp_calibrated")
-LOCALISES = {"shiftsieve": True, "ewma_zscore": True, "ewma_zscore_calibrated": True, "halfspacetrees": False,
-             "pcp": True, "pcp_calibrated": True}
-
 #: Half-life of the EWMA z-score, in samples (30 min at the demo's 30 s step): short enough to
 #: follow the demo's daily traffic swing, as a per-metric threshold must to be usable at all
 #: (at shiftsieve's own normaliser half-life, 1440, the daily swing alone fires every metric).
@@ -201,68 +193,38 @@ def _stacks(entities: list[_Entity]) -> list[list[_Entity]]:
     return groups
 
 
-def _stacked(entities: list[_Entity], detect: Callable[[np.ndarray, np.ndarray], Flags]) -> list[Flags]:
-    """Run a detector of independent columns once on the entities side by side (rows padded with
-    NaN, i.e. missing) and split its flags back; ``detect(F, history per column)``."""
+def _detect(method: ReferenceMethod, entities: list[_Entity]) -> list[Flags]:
+    """Run ``method`` once on the entities side by side (rows padded with NaN, i.e. missing) and
+    split its flags back; a method that is not columnwise gets one entity at a time."""
     widths = [e.X.shape[1] for e in entities]
     edges = np.cumsum([0, *widths])
     F = np.full((max(e.X.shape[0] for e in entities), edges[-1]), np.nan)
     for e, lo, hi in zip(entities, edges[:-1], edges[1:]):
         F[: e.X.shape[0], lo:hi] = _model_scale(e)
-    flags = detect(F, np.repeat([e.history for e in entities], widths))
+    flags = method.detect(F, warmup=np.repeat([e.warmup for e in entities], widths),
+                          history=np.repeat([e.history for e in entities], widths))
+    if not method.columnwise:
+        return [flags]
     return [Flags(*(a[: e.X.shape[0], lo:hi] for a in (flags.active, flags.stat, flags.expected)))
             for e, lo, hi in zip(entities, edges[:-1], edges[1:])]
 
 
-def _ewma_runner(calibrated: bool) -> Callable[[list[_Entity], Config], list[dict]]:
-    def run(entities: list[_Entity], config: Config) -> list[dict]:
-        m = config.model
-
-        def detect(F: np.ndarray, history: np.ndarray) -> Flags:
-            if calibrated:
-                return ewma_zscore_calibrated(F, history=history, halflife=EWMA_HALFLIFE,
-                                              false_alarm=m.false_alarm, warmup=m.warmup)
-            return EWMAZScore(F.shape[1], halflife=EWMA_HALFLIFE, false_alarm=m.false_alarm,
-                              warmup=m.warmup).process(F)
-
-        return [event for group in _stacks(entities)
-                for e, flags in zip(group, _stacked(group, detect))
-                for event in _events(e, _after_warmup(e, flags), config)]
-    return run
+def _reference_events(method: ReferenceMethod, entities: list[_Entity], config: Config) -> list[dict]:
+    """A reference method's events over all entities, stacked when its columns are independent;
+    a per-entity method skips entities with fewer than 2 warm-up rows."""
+    groups = _stacks(entities) if method.columnwise else [[e] for e in entities if e.warmup >= 2]
+    return [event for group in groups for e, flags in zip(group, _detect(method, group))
+            for event in _events(e, _after_warmup(e, flags), config, whole_vector=not method.localises)]
 
 
-def _each_entity(detect: Callable[[_Entity, Config], Flags], whole_vector: bool = False
-                 ) -> Callable[[list[_Entity], Config], list[dict]]:
-    """A per-entity detector (flags for the rows after the warm-up) over all entities; those with
-    fewer than 2 warm-up rows are skipped."""
-    def run(entities: list[_Entity], config: Config) -> list[dict]:
-        return [event for e in entities if e.warmup >= 2
-                for event in _events(e, detect(e, config), config, whole_vector)]
-    return run
-
-
-def _hst(e: _Entity, config: Config) -> Flags:
-    F = _model_scale(e)
-    detector = HalfSpaceTreesDetector(F.shape[1], false_alarm=config.model.false_alarm, seed=HST_SEED)
-    return detector.fit(F[: e.warmup]).process(F[e.warmup:])
-
-
-def _pcp(e: _Entity, config: Config) -> Flags:
-    return _after_warmup(e, pcp_detect(_model_scale(e), warmup=e.warmup, false_alarm=config.model.false_alarm).flags)
-
-
-def _pcp_calibrated(e: _Entity, config: Config) -> Flags:
-    return _after_warmup(e, pcp_calibrated(_model_scale(e), warmup=e.warmup, history=e.history,
-                                           false_alarm=config.model.false_alarm))
-
-
-_BASELINES: dict[str, Callable[[list[_Entity], Config], list[dict]]] = {
-    "ewma_zscore": _ewma_runner(calibrated=False),
-    "ewma_zscore_calibrated": _ewma_runner(calibrated=True),
-    "halfspacetrees": _each_entity(_hst, whole_vector=True),
-    "pcp": _each_entity(_pcp),
-    "pcp_calibrated": _each_entity(_pcp_calibrated),
-}
+def reference_methods(config: Config) -> dict[str, ReferenceMethod]:
+    """The baselines by name, with the configured false-alarm target."""
+    false_alarm = config.model.false_alarm
+    return {"ewma_zscore": EWMAZScoreMethod(EWMA_HALFLIFE, false_alarm),
+            "ewma_zscore_calibrated": EWMAZScoreMethod(EWMA_HALFLIFE, false_alarm, calibrated=True),
+            "halfspacetrees": HalfSpaceTreesMethod(false_alarm, seed=HST_SEED),
+            "pcp": PCPMethod(false_alarm),
+            "pcp_calibrated": PCPMethod(false_alarm, calibrated=True)}
 
 
 def _shiftsieve(vectors: list[Vector], config: Config) -> list[dict]:
@@ -296,9 +258,11 @@ def compare_vectors(vectors: list[Vector], config: Config, labels: Labels, *, me
         if name == "shiftsieve" and shiftsieve_run is not None:
             events, seconds = shiftsieve_run
         else:
-            events = _shiftsieve(vectors, config) if name == "shiftsieve" else _BASELINES[name](entities, config)
+            events = _shiftsieve(vectors, config) if name == "shiftsieve" else \
+            _reference_events(reference_methods(config)[name], entities, config)
             seconds = time.perf_counter() - started
-        rows.append(MethodScore(name, LOCALISES[name],
+        localises = name == "shiftsieve" or reference_methods(config)[name].localises
+        rows.append(MethodScore(name, localises,
                                 score_events(events, labels, vectors=count, timestamps=timestamps),
                                 count / seconds if seconds > 0 else float("inf"), seconds))
     return rows

@@ -139,3 +139,10 @@ def test_one_replay_serves_the_comparison(single_shift):
         return {k: v for k, v in row.to_dict().items() if k not in ("seconds", "vectors_per_second")}
     assert [scores(r) for r in rows] == [scores(r) for r in single_shift]
     assert rows[0].seconds == summary.seconds
+
+
+def test_every_baseline_is_a_reference_method_of_one_interface():
+    from shiftsieve.stream.evaluate import reference_methods
+    methods = reference_methods(load_config(None))
+    assert set(methods) == set(METHODS) - {"shiftsieve"}
+    assert {name for name, m in methods.items() if not m.localises} == {"halfspacetrees"}   # whole vectors only

@@ -6,7 +6,7 @@ import importlib
 import pytest
 
 MODULES = ["normaliser", "subspace", "validation", "projection", "shrinkage", "lasso", "refit", "thresholds",
-           "decision", "probation", "window", "detector", "dictionary", "mmv", "pcp", "baselines"]
+           "decision", "probation", "window", "detector", "dictionary", "mmv", "pcp", "baselines", "reference"]
 
 
 @pytest.mark.parametrize("name", MODULES)
