@@ -45,6 +45,7 @@ from .engine import Engine
 from .events import events_from_transitions
 from .labels import EvaluationError, Labels
 from .lines import InputError, Rejected
+from .pipeline import Pipeline
 from .replay import open_input
 from .scoring import Evaluation, score_events
 
@@ -228,10 +229,10 @@ def reference_methods(config: Config) -> dict[str, ReferenceMethod]:
 
 
 def _shiftsieve(vectors: list[Vector], config: Config) -> list[dict]:
+    """shiftsieve's events on vectors already read: the pipeline replay runs, without the reading."""
     events: list[dict] = []
     engine = Engine.from_config(config, sinks=[events.append])
-    for vector in vectors:
-        engine.feed(vector)
+    Pipeline(engine, config).feed(vectors, 0)
     engine.flush()
     return events
 

@@ -103,3 +103,17 @@ def test_demo_prints_alerts_and_the_score(capsys):
     assert "FIRING" in out and "db_pool_wait_p99_ms" in out and "RESOLVED" in out
     assert "judgement" in out
     assert main(["demo", "--scenario", "nope"]) == 2
+
+
+def test_a_refused_vector_is_dead_lettered_with_its_original_bytes(tmp_path, capsys):
+    """The engine refuses a sample that does not move time forward; its dead letter is the line
+    as it was written (key order, spacing, an RFC 3339 time), not a re-encoding of the vector."""
+    rows = _rows(20)
+    late = ('{ "metrics": {"req_per_s": 1.5,  "lat_ms": 2}, "entity": "ferry-gate-1",'
+            ' "ts": "2026-05-28T20:26:40Z" }')   # 1780000000 s: the first row's time again
+    src, dead = tmp_path / "in.jsonl", tmp_path / "dead.jsonl"
+    _write_jsonl(src, rows, extra_lines=[late])
+    assert main(["replay", str(src), "--events", str(tmp_path / "ev.jsonl"), "--dead-letter", str(dead)]) == 0
+    (letter,) = [json.loads(line) for line in dead.read_text().splitlines()]
+    assert letter["reason"] == "out_of_order" and letter["line"] == 21
+    assert letter["raw"] == late and letter["raw_encoding"] == "utf-8"
