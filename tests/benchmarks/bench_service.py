@@ -169,7 +169,7 @@ def run(args: argparse.Namespace, port: int) -> dict:
     from kafka.admin import NewTopic
 
     from shiftsieve.stream.config import load_config
-    from shiftsieve.stream.service import Service, kafka_settings
+    from shiftsieve.stream.service import Service
 
     N, M, E = args.vectors, args.latency_messages, args.entities
     topic = "bench-vectors"
@@ -203,7 +203,7 @@ def run(args: argparse.Namespace, port: int) -> dict:
     # 2. bare consume
     # session_timeout_ms 6000: with kafka-python's 10000 the join takes ~15 s on Tansu (~3 s with this); the
     # join is not timed; the fetch settings (what the rate depends on) are the ones the service uses
-    fetch = kafka_settings(load_config(None, {}), f"kafka://127.0.0.1:{port}/{topic}?group=bench-bare").consumer_kwargs()
+    fetch = load_config(None, {}).kafka_settings(f"kafka://127.0.0.1:{port}/{topic}?group=bench-bare").consumer_kwargs()
     consumer = KafkaConsumer(topic, bootstrap_servers=f"127.0.0.1:{port}", api_version=API, group_id="bench-bare",
                              auto_offset_reset="earliest", enable_auto_commit=False, max_poll_records=2000,
                              session_timeout_ms=6000, max_partition_fetch_bytes=fetch["max_partition_fetch_bytes"],
