@@ -49,7 +49,7 @@ class MetricRules:
     name's series notation, form the group ``key=value``).
     """
 
-    log_patterns: tuple[str, ...] = ()
+    log_patterns: tuple[str, ...] = ("*_ms", "*_seconds", "*_bytes")
     groups: tuple[tuple[str, tuple[str, ...]], ...] = ()
     group_by: tuple[str, ...] = ()
     max_metrics: int = 5000

@@ -23,6 +23,7 @@ from shiftsieve.models.detector import DetectorConfig
 from .assemble import MetricRules
 from .decode import DecodeLimits
 from .kafka import SASL_MECHANISMS, SECURITY_PROTOCOLS, KafkaSettings, check_topic, parse_kafka_url
+from .readers import DEFAULT_MAX_FILE_BYTES
 from .schema import (ENV_PREFIX, ConfigError, Range, Setting, coerce, derive_schema, parse_env, section_types,
                      setting, toml_value)
 
@@ -123,7 +124,7 @@ class ModelSection:
                                help="samples a new metric needs before it enters the model")
     group_weight: float = setting(DetectorConfig.group_weight, Range(0, 100, lo_open=True),
                                   help="penalty of a group column relative to a single metric")
-    log_metrics: list[str] = setting(["*_ms", "*_seconds", "*_bytes"], allowed="a list of non-empty glob patterns",
+    log_metrics: list[str] = setting(list(MetricRules.log_patterns), allowed="a list of non-empty glob patterns",
                                      check=_patterns,
                                      help="metrics (by name pattern) modelled on a symmetric log scale")
     groups: dict[str, list[str]] = setting(
@@ -169,9 +170,9 @@ class EngineSection:
         help="models kept in memory by `shiftsieve run`: after each poll the least recently seen entities beyond "
              "it are evicted (snapshotted first with state.directory, and restored when they return; without it "
              "they warm up again)")
-    max_metrics: int = setting(5000, Range(1, 100_000),
+    max_metrics: int = setting(MetricRules.max_metrics, Range(1, 100_000),
                                help="metrics one entity tracks; further names are ignored and counted")
-    drop_after: int = setting(1440, Range(1, 10_000_000),
+    drop_after: int = setting(MetricRules.drop_after, Range(1, 10_000_000),
                               help="samples a metric may be absent before it is dropped from its entity")
 
 
@@ -255,12 +256,14 @@ class HttpSection:
 class InputSection:
     """[input]: size bounds on what one message or replay file may cost."""
 
-    max_message_bytes: int = setting(1 << 20, Range(64, 1 << 26), help="largest accepted message or line")
+    max_message_bytes: int = setting(DecodeLimits.max_bytes, Range(64, 1 << 26),
+                                     help="largest accepted message or line")
     max_file_bytes: int = setting(
-        64 << 20, Range(1024, 1 << 32),
+        DEFAULT_MAX_FILE_BYTES, Range(1024, 1 << 32),
         help="largest whole-document replay input (a Prometheus range-query .json, decompressed size), read into "
              "memory at once (parsed, it takes several times this)")
-    max_metrics_per_message: int = setting(10_000, Range(1, 1_000_000), help="most metrics accepted in one vector")
+    max_metrics_per_message: int = setting(DecodeLimits.max_metrics, Range(1, 1_000_000),
+                                           help="most metrics accepted in one vector")
 
 
 @dataclass(frozen=True, init=False, eq=False)

@@ -25,7 +25,7 @@ from shiftsieve.models.batch_result import BatchResult
 from shiftsieve.models.detector import DetectorConfig
 
 from .assemble import EntityModel, MetricRules
-from .config import Config
+from .config import Config, EngineSection
 from .decode import Vector
 from .events import events_from_transitions, window_metrics
 from .registry import EntityRecord, EntityRegistry, IncidentWindow
@@ -116,8 +116,8 @@ class Engine:
     """Many entities, one process; each entity gets its own detector and one record
     (:class:`.registry.EntityRecord`) in :attr:`registry`."""
 
-    def __init__(self, detector_config: DetectorConfig, rules: MetricRules, *, batch_size: int = 64,
-                 max_entities: int = 100_000, sinks: Iterable[EventSink] = (),
+    def __init__(self, detector_config: DetectorConfig, rules: MetricRules, *,
+                 batch_size: int = EngineSection.batch_size, max_entities: int = EngineSection.max_entities, sinks: Iterable[EventSink] = (),
                  observers: Iterable[BatchObserver] = (), window_rows: int = 120) -> None:
         self.detector_config = detector_config
         self.rules = rules

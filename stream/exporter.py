@@ -21,6 +21,8 @@ from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, gene
 
 from shiftsieve.models.decision import FIRING, PENDING, QUIET
 
+from .config import HttpSection
+
 if TYPE_CHECKING:
     from .registry import EntityRecord
 
@@ -51,7 +53,7 @@ def label_value(text: str) -> str:
 class Exporter:
     """Owns a registry; the service calls :meth:`observe_events` and :meth:`refresh`."""
 
-    def __init__(self, max_series: int = 10_000) -> None:
+    def __init__(self, max_series: int = HttpSection.max_series) -> None:
         self.registry = CollectorRegistry(auto_describe=True)
         self.max_series = max_series
         r = self.registry
