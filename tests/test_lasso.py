@@ -8,7 +8,6 @@ Gram-pseudo-inverse implementation.
 
 from __future__ import annotations
 
-import doctest
 import math
 
 import numpy as np
@@ -18,7 +17,6 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from sklearn.linear_model import Lasso
 
-import shiftsieve.models.lasso as lasso_mod
 from shiftsieve.models.lasso import LassoResult, lasso_objective, projected_residual, solve_projected_lasso
 from shiftsieve.models.refit import debias, refit_solution
 
@@ -476,15 +474,6 @@ def test_property_monotone_improvement(seed, n, r, B, use_phi, use_mask, tol, ma
     assert np.all(res.gap >= -slack)  # reference: weak duality
     assert np.all((res.n_iter >= 0) & (res.n_iter <= max_iter))
     assert np.all(res.coef[np.isinf(pen)] == 0.0)
-
-
-# ------------------------------------------------------------ doctests
-
-
-def test_docstring_examples_run():
-    # Reference: the examples in the module's docstrings (doctest).
-    out = doctest.testmod(lasso_mod, optionflags=doctest.NORMALIZE_WHITESPACE)
-    assert out.attempted > 0 and out.failed == 0
 
 
 def test_refit_solution_equals_debias_and_projected_residual():
