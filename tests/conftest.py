@@ -14,9 +14,16 @@ wheel's exec bit did not survive); ``tansu`` on PATH. Unlike
 
 from __future__ import annotations
 
+import os
+
+# One BLAS thread per process, as the container runs it (deploy/Dockerfile; DEVELOPERS.md,
+# Benchmarks): on a shared 2-core machine OpenBLAS's own threads fight the tests' broker and
+# service processes. Set before anything imports numpy; subprocesses inherit it.
+for _name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_name, "1")
+
 import importlib.resources
 import itertools
-import os
 import re
 import shutil
 import socket
