@@ -253,6 +253,7 @@ def compare_vectors(vectors: list[Vector], config: Config, labels: Labels, *, me
     count = sum(ts.size for ts in timestamps.values())
     entities = _entities(by_entity, Engine.from_config(config), config, labels) \
         if set(chosen) - {"shiftsieve"} else []
+    references = reference_methods(config)
     rows = []
     for name in chosen:
         started = time.perf_counter()
@@ -260,9 +261,9 @@ def compare_vectors(vectors: list[Vector], config: Config, labels: Labels, *, me
             events, seconds = shiftsieve_run
         else:
             events = _shiftsieve(vectors, config) if name == "shiftsieve" else \
-            _reference_events(reference_methods(config)[name], entities, config)
+                _reference_events(references[name], entities, config)
             seconds = time.perf_counter() - started
-        localises = name == "shiftsieve" or reference_methods(config)[name].localises
+        localises = name == "shiftsieve" or references[name].localises
         rows.append(MethodScore(name, localises,
                                 score_events(events, labels, vectors=count, timestamps=timestamps),
                                 count / seconds if seconds > 0 else float("inf"), seconds))
