@@ -2,21 +2,19 @@
 
 from __future__ import annotations
 
-import datetime as dt
 import sys
 from importlib import resources
 from pathlib import Path
 from typing import TextIO
 
+from .alert_lines import format_event
 from .config import Config
 from .labels import load_labels
 from .scoring import format_table, score_events
 from .lines import InputError
 from .replay import replay
-from .timefmt import human_duration
 
 LABELS_SUFFIX = ".labels.json"
-MAX_ROWS = 8   # metrics shown per event; the events file has them all
 
 DEFAULT_SCENARIO = "single_shift"   # what `shiftsieve demo` and `shiftsieve produce` use by default
 
@@ -42,34 +40,6 @@ def list_scenarios() -> str:
         labels = load_labels(data.with_name(f"{name}{LABELS_SUFFIX}"))
         lines.append(f"{name:14s} {labels.description}")
     return "\n".join(lines)
-
-
-def _when(ts: float) -> str:
-    return dt.datetime.fromtimestamp(ts, dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%SZ")
-
-
-def _number(x: float | None) -> str:
-    return "-" if x is None else f"{x:,.4g}"
-
-
-def format_event(event: dict) -> str:
-    """A few aligned lines per event: what happened, where, and the metrics ranked by shift."""
-    state = event["state"].upper()
-    head = f"{_when(event['ts'])}  {state:9s} {event['entity']}  incident {event['incident']}"
-    if event["state"] == "firing":
-        head += "  (new incident)" if event.get("onset") else "  (joins incident)"
-    elif event["state"] == "resolved":
-        head += f"  after {human_duration(event['duration_seconds'])}; peak shifts:"
-    else:
-        head += f"  after {human_duration(event['duration_seconds'])}: accepted as the new normal"
-    width = max(28, *(len(m["name"]) for m in event["metrics"][:MAX_ROWS]))
-    rows = [f"    {'metric':{width}s} {'shift':>9s} {'observed':>12s} {'expected':>12s}"]
-    for m in event["metrics"][:MAX_ROWS]:
-        rows.append(f"    {m['name']:{width}s} {m['shift_sigma']:+8.1f}\u03c3 {_number(m['value']):>12s} "
-                    f"{_number(m['expected']):>12s}")
-    if len(event["metrics"]) > MAX_ROWS:
-        rows.append(f"    ... and {len(event['metrics']) - MAX_ROWS} more")
-    return "\n".join([head, *rows])
 
 
 def run_demo(name: str, config: Config, *, events_path: str | None = None, out: TextIO | None = None) -> int:

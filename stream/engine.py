@@ -156,6 +156,8 @@ class Engine:
         pending = record.pending
         if not pending:   # once per batch, not per vector: batches are how recency is counted
             self.registry.touch(record)
+            if record.first_ts is None:
+                record.first_ts = vector.ts
         last = pending[-1].ts if pending else record.model.last_ts
         if vector.ts <= last:   # duplicates and late samples would corrupt the baseline
             self.counts.rejected_out_of_order += 1

@@ -280,10 +280,10 @@ def _hit_cell(e: Evaluation, ranking: str, localises: bool) -> str:
 
 
 def format_comparison(rows: Sequence[MethodScore]) -> str:
-    """The one table (F1, precision, recall, false alerts per entity-day, fragments, median delay,
+    """The one table (F1, precision, recall, false alerts per entity-day, repeats, median delay,
     HitRate on each ranking, point-adjusted F1, time) and a legend.  Localisation is not a column:
     it is HitRate@100% of the metrics ranking (the JSON keeps it)."""
-    head = ("method", "F1", "prec", "recall", "false/day", "frag", "delay s (steps)",
+    head = ("method", "F1", "prec", "recall", "false/day", "repeat", "delay s (steps)",
             "HR metrics", "HR msbl", "HR gLASSO", "PA-F1*", "seconds", "vectors/s")
     body = []
     for r in rows:
@@ -291,7 +291,7 @@ def format_comparison(rows: Sequence[MethodScore]) -> str:
         delay = "n/a" if e.delay_median_seconds is None else f"{e.delay_median_seconds:.0f}" + (
             "" if e.delay_median_steps is None else f" ({e.delay_median_steps:.1f})")
         body.append((r.method, f"{e.f1:.2f}", f"{e.precision:.2f}", f"{e.recall:.2f}",
-                     _cell(e.false_alerts_per_entity_day), str(len(e.fragments)), delay,
+                     _cell(e.false_alerts_per_entity_day), str(len(e.repeats)), delay,
                      _hit_cell(e, "metrics", r.localises), _hit_cell(e, "msbl", r.localises),
                      _hit_cell(e, "group_lasso", r.localises),
                      _cell(None if e.point_adjusted is None else e.point_adjusted.f1),
@@ -306,8 +306,8 @@ def format_comparison(rows: Sequence[MethodScore]) -> str:
     for row in (head, *body):
         lines.append("  ".join(cell.ljust(w) if i == 0 else cell.rjust(w)
                                for i, (cell, w) in enumerate(zip(row, widths))))
-    lines += ["false/day: false alerts per scored entity-day; frag: further onsets inside an already detected",
-              "  label (not false alerts); delay: median onset - start; HR: HitRate@100%/@150% (Su et al. 2019) on",
+    lines += ["false/day: false alerts per scored entity-day; repeat: further onsets inside an already detected",
+              "  label (neither true nor false alerts); delay: median onset - start; HR: HitRate@100%/@150% (Su et al. 2019) on",
               "  the incident's metrics by peak |shift| and on its joint-window rankings (M-SBL, group LASSO);",
               "  PA-F1*: point-adjusted F1 (Xu et al. 2018), the published papers' convention -- it inflates",
               "  scores; compare it only with published figures."]

@@ -59,6 +59,7 @@ class EntityRecord:
     window: IncidentWindow | None = None                      # the open incident's residual rows
     tail: np.ndarray | None = None                            # raw rows before the batch (pending entities)
     exported: set[str] | None = None                          # columns with published series (None: none)
+    first_ts: float | None = None                             # its first vector fed to this process
 
     @property
     def entity(self) -> str:

@@ -17,6 +17,8 @@ from pathlib import Path
 from typing import Callable, TextIO
 
 from .config import Config
+from .coverage import EntityCoverage, OpenIncident, coverage_notes, entity_coverage, open_incident_notes, \
+    open_incidents, scored_total
 from .decode import Vector
 from .engine import BatchObserver, Engine, EventSink
 from .events import EventFileWriter
@@ -38,14 +40,28 @@ class ReplaySummary:
     seconds: float
     solver_unconverged: int = 0
     rewarmed: list[tuple[str, str]] = field(default_factory=list)   # (entity, why): models that went bad
+    coverage: list[EntityCoverage] = field(default_factory=list)   # per entity: vectors, scored, warm-up
+    still_open: list[OpenIncident] = field(default_factory=list)   # incidents firing when the input ended
 
     @property
     def rate(self) -> float:
         return self.vectors / self.seconds if self.seconds > 0 else float("inf")
 
+    @property
+    def scored(self) -> int:
+        """Vectors scored (the rest built warm-ups)."""
+        return scored_total(self.coverage)
+
     def format(self) -> str:
+        """The summary a person reads: one line of figures, then a line per thing worth knowing
+        (entities that never warmed up, incidents still open)."""
+        lines = [self._figures(), *coverage_notes(self.coverage), *open_incident_notes(self.still_open)]
+        return "\n".join(lines)
+
+    def _figures(self) -> str:
         reasons = ", ".join(f"{k} {v}" for k, v in sorted(self.rejected_by_reason.items()))
-        line = (f"{_count(self.vectors, 'vector')}, {_count(self.entities, 'entity', 'entities')}, "
+        line = (f"{_count(self.vectors, 'vector')} ({self.scored:,} scored), "
+                f"{_count(self.entities, 'entity', 'entities')}, "
                 f"{_count(self.incidents, 'incident')} ({_count(self.events, 'event')}) in {self.seconds:.2f} s "
                 f"({self.rate:,.0f} vectors/s)")
         if self.rejected:
@@ -58,7 +74,7 @@ class ReplaySummary:
 
 
 def _count(n: int, one: str, many: str | None = None) -> str:
-    return f"{n} {one if n == 1 else many or one + 's'}"
+    return f"{n:,} {one if n == 1 else many or one + 's'}"
 
 
 class Progress:
@@ -136,4 +152,6 @@ def replay(path: str | Path, config: Config, *, events_path: str | None = None,
                          rejected_by_reason=dict(pipeline.rejected_by_reason), entities=len(engine.entities),
                          incidents=engine.counts.incidents, events=engine.counts.events,
                          solver_unconverged=engine.counts.solver_unconverged, rewarmed=engine.rewarmed,
+                         coverage=entity_coverage(engine.registry.records()),
+                         still_open=open_incidents(engine.registry.records()),
                          seconds=time.perf_counter() - started)

@@ -61,6 +61,7 @@ import orjson
 
 from .labels import EvaluationError, LabelledIncident, Labels, finite_number, read_input
 from .literature import covered, hit_rate, point_adjust
+from .timefmt import rfc3339
 
 STATES = frozenset({"firing", "resolved", "adapted"})
 WINDOW_RANKINGS = ("group_lasso", "msbl")          # the joint-window rankings of ``window_metrics``
@@ -129,7 +130,7 @@ class Evaluation:
     matches: tuple[Match, ...]
     missed: tuple[LabelledIncident, ...]
     false_alerts: tuple[PredictedIncident, ...]
-    fragments: tuple[PredictedIncident, ...]
+    repeats: tuple[PredictedIncident, ...]
     unscored: tuple[PredictedIncident, ...]
     precision: float
     recall: float
@@ -168,7 +169,7 @@ class Evaluation:
             "false_alerts": len(self.false_alerts), "false_alerts_per_10k_vectors": self.false_alerts_per_10k,
             "scored_entity_days": self.scored_entity_days,
             "false_alerts_per_entity_day": self.false_alerts_per_entity_day,
-            "fragments": len(self.fragments), "unscored": len(self.unscored),
+            "repeats": len(self.repeats), "unscored": len(self.unscored),
             "point_adjusted": None if pa is None else {
                 "convention": "point-adjusted (Xu et al. 2018); inflates scores, for comparison with published "
                               "figures only",
@@ -186,8 +187,8 @@ class Evaluation:
                        for lab in self.missed],
             "false_alert_incidents": [{"incident": p.incident, "entity": p.entity, "onset": p.onset,
                                        "reported_metrics": _metrics_dict(p)} for p in self.false_alerts],
-            "fragment_incidents": [{"incident": p.incident, "entity": p.entity, "onset": p.onset}
-                                   for p in self.fragments],
+            "repeat_incidents": [{"incident": p.incident, "entity": p.entity, "onset": p.onset}
+                                   for p in self.repeats],
         }
 
 
@@ -355,7 +356,7 @@ def score_events(events: Sequence[dict], labels: Labels, *, vectors: int | None 
     free = set(order)
     matches: list[Match] = []
     false_alerts: list[PredictedIncident] = []
-    fragments: list[PredictedIncident] = []
+    repeats: list[PredictedIncident] = []
     unscored: list[PredictedIncident] = []
     for p in predicted:
         if p.onset < labels.scored_after(p.entity):
@@ -367,7 +368,7 @@ def score_events(events: Sequence[dict], labels: Labels, *, vectors: int | None 
             free.discard(hit)
             matches.append(_match(labels.incidents[hit], p))
         else:   # every label covering it is already matched (it would have taken a free one)
-            (fragments if covering else false_alerts).append(p)
+            (repeats if covering else false_alerts).append(p)
     precision, recall, f1 = _scores(len(matches), len(matches) + len(false_alerts), len(labels.incidents))
     delays = [m.delay_seconds for m in matches]
     days = scored_entity_days(labels, timestamps) if timestamps is not None else None
@@ -375,7 +376,7 @@ def score_events(events: Sequence[dict], labels: Labels, *, vectors: int | None 
         scenario=labels.scenario, vectors=count, tolerance_seconds=float(tolerance),
         labelled=len(labels.incidents), predicted=tuple(predicted), matches=tuple(matches),
         missed=tuple(labels.incidents[i] for i in order if i in free), false_alerts=tuple(false_alerts),
-        fragments=tuple(fragments), unscored=tuple(unscored), precision=precision, recall=recall, f1=f1,
+        repeats=tuple(repeats), unscored=tuple(unscored), precision=precision, recall=recall, f1=f1,
         localisation=sum(m.localisation for m in matches) / len(matches) if matches else None,
         delay_mean_seconds=sum(delays) / len(delays) if delays else None,
         delay_median_seconds=float(np.median(delays)) if delays else None,
@@ -402,35 +403,41 @@ def _rates(rates: Mapping[str, Sequence[float]]) -> str:
 
 
 def format_table(evaluation: Evaluation) -> str:
-    """Compact human-readable report of an `Evaluation`."""
+    """Compact human-readable report of an `Evaluation` (times in RFC 3339, UTC)."""
     e = evaluation
     pa = e.point_adjusted
     steps = "" if e.delay_median_steps is None else f" ({e.delay_median_steps:.1f} steps)"
     per_day = "" if e.false_alerts_per_entity_day is None else \
         f", {e.false_alerts_per_entity_day:.2f} per entity-day ({e.scored_entity_days:.1f} scored entity-days)"
+    delay = "delay: nothing matched" if e.delay_median_seconds is None else (
+        f"delay mean {e.delay_mean_seconds:.1f} s  median {e.delay_median_seconds:.1f} s{steps}"
+        f"  max {e.delay_max_seconds:.1f} s")
     lines = [
         f"scenario {e.scenario}: {e.labelled} labelled, {len(e.predicted)} predicted, {len(e.matches)} matched"
         f" (tolerance {e.tolerance_seconds:g} s; {len(e.unscored)} before scored_from, not scored)",
         f"precision {_num(e.precision)}  recall {_num(e.recall)}  F1 {_num(e.f1)}  localisation {_num(e.localisation)}",
         f"HitRate@100%/150%: {_rates({name: (h.at_100, h.at_150) for name, h in e.hit_rate.items()})}",
-        f"delay mean {_num(e.delay_mean_seconds, 1)} s  median {_num(e.delay_median_seconds, 1)} s{steps}"
-        f"  max {_num(e.delay_max_seconds, 1)} s",
+        delay,
         f"false alerts {len(e.false_alerts)} = {e.false_alerts_per_10k:.2f} per 10k vectors{per_day}"
-        f" ({e.vectors} vectors, {len(e.fragments)} fragments)",
+        f" ({e.vectors:,} vectors)",
     ]
+    if e.repeats:
+        lines.append(f"repeats {len(e.repeats)}: further onsets inside a labelled incident already found "
+                     f"(neither true nor false alerts)")
     if pa is not None:
         lines.append(f"point-adjusted (Xu et al. 2018; inflated, only to compare with published figures): "
                      f"precision {pa.precision:.3f}  recall {pa.recall:.3f}  F1 {pa.f1:.3f}")
     for m in e.matches:
-        lines.append(f"  found  {m.label.entity}  start {m.label.start:.1f}  delay {m.delay_seconds:+.1f} s"
+        lines.append(f"  found  {m.label.entity}  start {rfc3339(m.label.start)}  delay {m.delay_seconds:+.1f} s"
                      f"  HitRate {_rates(m.hit_rates)}  {m.predicted.incident}"
                      f"  top {_top(m.predicted)}")
     for lab in e.missed:
-        lines.append(f"  missed {lab.entity}  start {lab.start:.1f}  end {lab.end:.1f}  {','.join(lab.metrics)}")
+        lines.append(f"  missed {lab.entity}  start {rfc3339(lab.start)}  end {rfc3339(lab.end)}"
+                     f"  {','.join(lab.metrics)}")
     for p in e.false_alerts:
-        lines.append(f"  false  {p.entity}  onset {p.onset:.1f}  {p.incident}  top {_top(p)}")
+        lines.append(f"  false  {p.entity}  onset {rfc3339(p.onset)}  {p.incident}  top {_top(p)}")
     return "\n".join(lines)
 
 
 def _top(p: PredictedIncident, k: int = 3) -> str:
-    return ",".join(f"{name}({size:.1f})" for name, size in p.metrics[:k]) or "-"
+    return ", ".join(f"{name} {size:+.1f}\u03c3" for name, size in p.metrics[:k]) or "-"

@@ -40,7 +40,7 @@ def test_every_method_runs_and_shiftsieve_finds_the_labelled_fault(single_shift)
 def test_table_has_one_row_per_method_and_no_hit_rate_for_hst(single_shift):
     table = format_comparison(single_shift).splitlines()
     head = table[1].split("  ")
-    for column in ("F1", "prec", "recall", "false/day", "frag", "HR metrics", "HR msbl", "PA-F1*",
+    for column in ("F1", "prec", "recall", "false/day", "repeat", "HR metrics", "HR msbl", "PA-F1*",
                    "seconds", "vectors/s"):
         assert column in [cell.strip() for cell in head if cell.strip()]
     hst = dict(zip([c.strip() for c in head if c.strip()],

@@ -33,7 +33,7 @@ EVENTS = [
     fire(1060.0, "api-1/1030", ("b", -7.0), ("a", 4.0)),  # b joins; a keeps its larger 6.0
     fire(1900.0, "api-1/1030", state="resolved"),
     fire(1100.0, "api-2/1100", ("a", 9.0)),  # right window, wrong entity
-    fire(1500.0, "api-1/1500", ("a", 5.0)),  # second onset inside a matched label: a fragment, not a false alert
+    fire(1500.0, "api-1/1500", ("a", 5.0)),  # second onset inside a matched label: a repeat, not a false alert
     fire(4950.0, "db-1/4950", ("y", 8.0), ("x", 6.0)),  # 50 s early, within the default 120 s
     fire(9000.0, "db-1/9000", ("x", 6.0)),
     fire(300.0, "api-1/300", state="resolved"),  # never fired: not a prediction
@@ -45,8 +45,8 @@ def test_matching_scores() -> None:
     assert [p.incident for p in e.predicted] == ["api-1/1030", "api-2/1100", "api-1/1500", "db-1/4950", "db-1/9000"]
     assert [m.predicted.incident for m in e.matches] == ["api-1/1030", "db-1/4950"]
     assert [p.incident for p in e.false_alerts] == ["api-2/1100", "db-1/9000"]
-    assert e.missed == () and [p.incident for p in e.fragments] == ["api-1/1500"] and e.unscored == ()
-    assert e.precision == 0.5   # matched / (matched + false alerts) = 2 / 4: the fragment is neither
+    assert e.missed == () and [p.incident for p in e.repeats] == ["api-1/1500"] and e.unscored == ()
+    assert e.precision == 0.5   # matched / (matched + false alerts) = 2 / 4: the repeat is neither
     assert e.recall == 1.0
     assert e.f1 == pytest.approx(2 * 0.5 * 1.0 / 1.5)  # 2/3
     # api-1: top-3 = b(7), a(6), d(5) holds 2 of {a, b, c}; db-1: top-1 = y holds none of {x}
@@ -76,7 +76,7 @@ def test_zero_labels_with_a_false_alert() -> None:
     e = score_events([fire(10.0, "api-1/10", ("a", 7.0))], Labels("surge", 6000, ()))
     assert (e.precision, e.recall, e.f1) == (0.0, 1.0, 0.0)
     assert e.false_alerts_per_10k == pytest.approx(10000 / 6000)
-    assert e.fragments == ()
+    assert e.repeats == ()
 
 
 def test_silent_detector_misses_everything() -> None:
@@ -111,14 +111,15 @@ def test_localisation_ties_break_by_name() -> None:
 def test_report_and_dict() -> None:
     e = score_events(EVENTS, TWO)
     d = orjson.loads(orjson.dumps(e.to_dict()))
-    assert (d["labelled"], d["predicted"], d["matched"], d["false_alerts"], d["fragments"]) == (2, 5, 2, 2, 1)
+    assert (d["labelled"], d["predicted"], d["matched"], d["false_alerts"], d["repeats"]) == (2, 5, 2, 2, 1)
     assert d["false_alerts_per_10k_vectors"] == 1.0 and d["unscored"] == 0
     assert d["matches"][0]["reported_metrics"] == {"b": 7.0, "a": 6.0, "d": 5.0}
-    assert d["fragment_incidents"] == [{"incident": "api-1/1500", "entity": "api-1", "onset": 1500.0}]
+    assert d["repeat_incidents"] == [{"incident": "api-1/1500", "entity": "api-1", "onset": 1500.0}]
     assert d["point_adjusted"] is None and d["false_alerts_per_entity_day"] is None   # no timestamps given
     table = format_table(e)
     for text in ("precision 0.500", "recall 1.000", "F1 0.667", "localisation 0.333",
-                 "delay mean -10.0 s  median -10.0 s  max 30.0 s", "1.00 per 10k vectors", "1 fragments"):
+                 "delay mean -10.0 s  median -10.0 s  max 30.0 s", "1.00 per 10k vectors", "repeats 1: further onsets",
+                 "onset 1970-01-01T02:30:00Z", "top x +6.0\u03c3"):
         assert text in table
     assert "localisation n/a" in format_table(score_events([], Labels("surge", 6000, ())))
 
@@ -180,7 +181,7 @@ def test_missing_files_and_bad_arguments(tmp_path: Path) -> None:
         score_events([], TWO, vectors=0)
 
 
-# --- scored_from, tolerance in steps, fragments: the ASD reading of published labelled sets ---------------
+# --- scored_from, tolerance in steps, repeats: the ASD reading of published labelled sets ---------------
 
 def _scored_labels(**extra) -> Labels:
     """api-1 sampled every 60 s at ts 0..540; labelled [120, 240] and [420, 480]; scored from ts 60."""
@@ -196,18 +197,18 @@ def closed(ts: float, incident: str) -> dict:
 SCORED_EVENTS = [
     fire(0.0, "api-1/0", ("a", 6.0)), closed(0.0, "api-1/0"),          # before scored_from: not scored
     fire(180.0, "api-1/180", ("a", 6.0)), closed(180.0, "api-1/180"),  # detects [120, 240], 1 step late
-    fire(200.0, "api-1/200", ("a", 6.0)), closed(200.0, "api-1/200"),  # again inside it: a fragment
+    fire(200.0, "api-1/200", ("a", 6.0)), closed(200.0, "api-1/200"),  # again inside it: a repeat
     fire(540.0, "api-1/540", ("a", 6.0)),                             # after [420, 480]: false, never closed
 ]
 API_TS = {"api-1": np.arange(0.0, 600.0, 60.0)}
 
 
-def test_scored_from_fragments_and_delay_in_steps() -> None:
+def test_scored_from_repeats_and_delay_in_steps() -> None:
     e = score_events(SCORED_EVENTS, _scored_labels(), timestamps=API_TS)
     assert e.tolerance_seconds == 60.0                        # 1 step of 60 s
     assert [p.incident for p in e.unscored] == ["api-1/0"]
     assert [m.predicted.incident for m in e.matches] == ["api-1/180"]
-    assert [p.incident for p in e.fragments] == ["api-1/200"]
+    assert [p.incident for p in e.repeats] == ["api-1/200"]
     assert [p.incident for p in e.false_alerts] == ["api-1/540"]
     assert [lab.start for lab in e.missed] == [420.0]
     assert (e.precision, e.recall) == (0.5, 0.5)              # 1 / (1 + 1); 1 of 2 labels

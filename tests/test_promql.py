@@ -242,7 +242,7 @@ def test_replay_cli_counts_and_dead_letters_bad_items(tmp_path, capsys):
                   _series("up", [[TS, "1"]], job="ferry"))
     src, dead, events = _incident(tmp_path, doc=doc), tmp_path / "dead.jsonl", tmp_path / "ev.jsonl"
     assert main(["replay", str(src), "--events", str(events), "--dead-letter", str(dead)]) == 0
-    assert "50 vectors, 1 entity," in capsys.readouterr().err
+    assert "50 vectors (0 scored), 1 entity," in capsys.readouterr().err
     letters = [json.loads(line) for line in dead.read_text().splitlines()]
     assert [(d["line"], d["reason"]) for d in letters] == [(1, "bad_ts"), (2, "no_entity")]
     assert json.loads(letters[1]["raw"]) == doc["data"]["result"][1]
@@ -371,7 +371,7 @@ def test_real_prometheus_export_replays(prometheus_export, tmp_path, capsys):
     config.write_text('[source]\nentity_labels = ["job", "instance"]\n[model]\nwarmup = 120\n')
     events = tmp_path / "events.jsonl"
     assert main(["replay", str(path), "--events", str(events), "--config", str(config)]) == 0
-    assert f"{2 * SAMPLES} vectors, 2 entities" in capsys.readouterr().err
+    assert f"{2 * SAMPLES} vectors ({2 * (SAMPLES - 120)} scored), 2 entities" in capsys.readouterr().err
     firing = [json.loads(line) for line in events.read_text().splitlines()]
     firing = [e for e in firing if e["state"] == "firing"]
     stepped = [e for e in firing if e["entity"] == "brinehaven/booking-api-1"
