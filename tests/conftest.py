@@ -48,12 +48,13 @@ def _unavailable(reason: str):
     pytest.skip(f"Kafka broker unavailable: {reason} (set {REQUIRE_ENV}=1 to make this a failure)")
 
 
-def required_tool(name: str) -> str:
-    """Path of a Debian-packaged tool the test needs (promtool, prometheus): skip locally when it is
+def required_tool(name: str, package: str = "prometheus") -> str:
+    """Path of a Debian-packaged tool the test needs (promtool and prometheus from ``prometheus``,
+    prometheus-alertmanager and amtool from ``prometheus-alertmanager``): skip locally when it is
     missing, fail with SHIFTSIEVE_REQUIRE_BROKER=1 (CI, where .ci/run installs it)."""
     path = shutil.which(name)
     if path is None:
-        why = f"{name} not installed (Debian package prometheus; .ci/run installs it)"
+        why = f"{name} not installed (Debian package {package}; .ci/run installs it)"
         if os.environ.get(REQUIRE_ENV, "").strip() not in ("", "0", "false", "no"):
             pytest.fail(f"{why}, and {REQUIRE_ENV}=1", pytrace=False)
         pytest.skip(f"{why}; set {REQUIRE_ENV}=1 to make this a failure")
