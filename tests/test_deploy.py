@@ -1,10 +1,12 @@
-"""Static checks of deploy/: the image, the compose stack, the Kubernetes manifests, Prometheus and the
-OpenTelemetry Collector configuration, against the code they deploy (no container engine runs here).
+"""Static checks of deploy/: the image, the compose stack, the Kubernetes manifests, Prometheus,
+Alertmanager and the OpenTelemetry Collector configuration, against the code they deploy (no container
+engine runs here; tests/test_alert_delivery.py runs Prometheus and Alertmanager with these files).
 
 References: the Dockerfile reference (instructions, line continuations, exec form = a JSON array),
 the Compose specification, the Kubernetes API (apps/v1 Deployment, policy/v1 PodDisruptionBudget,
-monitoring.coreos.com/v1 ServiceMonitor), Prometheus' own promtool, kustomize (kubectl kustomize),
-and the code's own schema, CLI parser and HTTP endpoints for names, ports and paths.
+monitoring.coreos.com/v1 ServiceMonitor), Prometheus' own promtool, Alertmanager's own amtool,
+kustomize (kubectl kustomize), and the code's own schema, CLI parser and HTTP endpoints for names,
+ports and paths.
 """
 
 from __future__ import annotations
@@ -445,6 +447,41 @@ def test_promtool_checks_the_kubernetes_prometheus_config(tmp_path) -> None:
     read = {label for rule in job["relabel_configs"] for label in rule["source_labels"]
             if "annotation" in label}
     assert read == meta
+
+
+# --- Alertmanager: amtool and the compose wiring --------------------------------------------------
+
+ALERTMANAGER = DEPLOY / "alertmanager" / "alertmanager.yml"
+
+
+def test_amtool_checks_the_shipped_alertmanager_config() -> None:
+    amtool = required_tool("amtool", package="prometheus-alertmanager")
+    proc = subprocess.run([amtool, "check-config", str(ALERTMANAGER)], capture_output=True, text=True)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+
+
+def test_the_route_groups_shift_alerts_by_entity_and_sends_resolved() -> None:
+    [config] = load_yaml(ALERTMANAGER)
+    route = config["route"]
+    assert "entity" in route["group_by"] and set(route["group_by"]) <= {"alertname", "entity"}
+    [receiver] = [r for r in config["receivers"] if r["name"] == route["receiver"]]
+    [hook] = receiver["webhook_configs"]
+    assert hook["send_resolved"] is True and ".invalid" in hook["url"]   # a placeholder (RFC 2606), not a real host
+
+
+def test_compose_prometheus_sends_to_the_stacks_alertmanager() -> None:
+    services = compose()["services"]
+    alertmanager = services["alertmanager"]
+    image, _, tag = alertmanager["image"].partition(":")
+    assert image == "prom/alertmanager" and re.fullmatch(r"v\d+\.\d+\.\d+", tag)   # pinned
+    config_flag = next(a for a in alertmanager["command"] if a.startswith("--config.file="))
+    assert f"./alertmanager/{ALERTMANAGER.name}:{config_flag.split('=', 1)[1]}:ro" in alertmanager["volumes"]
+    assert "alertmanager" in services["prometheus"]["depends_on"]
+    for path in (DEPLOY / "prometheus" / "prometheus.yml", DEPLOY / "prometheus" / "prometheus-kubernetes.yml"):
+        [prometheus] = load_yaml(path)
+        [target] = prometheus["alerting"]["alertmanagers"][0]["static_configs"][0]["targets"]
+        assert target == "alertmanager:9093", path   # Alertmanager's default port; in compose, the service name
+    assert any(p.endswith(":9093") for p in alertmanager["ports"])
 
 
 # --- the OpenTelemetry Collector and the OTLP sample ----------------------------------------------
