@@ -16,8 +16,11 @@ The decode layer never raises anything but `DecodeError` for bad input; its
   `labels` (must be string -> string; sizes bounded only by max_bytes).
 - A single bad metric loses only itself: a value that is not a number (string,
   boolean, array, object), not finite, or beyond `max_abs_value` becomes
-  missing (None) and is listed in `Vector.invalid` as (name, reason):
-  "not_a_number", "non_finite" (NaN, infinities, and JSON numbers beyond
+  missing (None) and is listed in `Vector.invalid` as (name, reason), its value
+  shown in `Vector.shown`: "numeric_string" (a JSON number sent as a string,
+  ``"12"``: the contract is a number, RFC 8259 keeps the two apart), "not_a_number"
+  (other strings such as ``"n/a"``, booleans, arrays, objects),
+  "non_finite" (NaN, infinities, and JSON numbers beyond
   double range such as 1e400), "out_of_range" (|x| > max_abs_value, or an
   integer too large for a float). An entry
   whose *name* is unusable (empty, too long, not a string, not encodable as
@@ -46,7 +49,7 @@ import numpy as np
 import orjson
 
 from .timefmt import rfc3339
-from .values import is_number, is_utf8, kind_of, show
+from .values import is_number, is_utf8, kind_of, not_a_number_reason, show, show_value
 
 __all__ = [
     "DEFAULT_LIMITS",
@@ -78,7 +81,7 @@ REASONS = frozenset({
 })
 
 #: Reasons in Vector.invalid for single entries treated as missing.
-INVALID_VALUE_REASONS = frozenset({"bad_name", "not_a_number", "non_finite", "out_of_range"})
+INVALID_VALUE_REASONS = frozenset({"bad_name", "numeric_string", "not_a_number", "non_finite", "out_of_range"})
 
 
 class Layout:
@@ -150,6 +153,9 @@ class Vector:
     invalid: tuple[tuple[str, str], ...] = ()
     layout: Layout = field(default=None, compare=False, repr=False)  # type: ignore[assignment]
     values: np.ndarray = field(default=None, compare=False, repr=False)  # type: ignore[assignment]
+    #: The invalid entries' values as `values.show_value` gives them, parallel to ``invalid`` (for dead
+    #: letters; empty when the decoder did not keep them).
+    shown: tuple[str, ...] = field(default=(), compare=False, repr=False)
 
     def __post_init__(self) -> None:
         if self.layout is None:
@@ -255,9 +261,9 @@ def vector_from_object(obj: Any, limits: DecodeLimits = DEFAULT_LIMITS) -> Vecto
         raise DecodeError("not_object", f"message must be a JSON object, not {kind_of(obj)}")
     ts = check_timestamp(obj.get("ts"), limits)
     entity = _entity(obj.get("entity"), limits)
-    metrics, invalid, layout, values = _metrics(obj.get("metrics"), limits)
+    metrics, invalid, layout, values, shown = _metrics(obj.get("metrics"), limits)
     labels = check_labels(obj.get("labels"))
-    return Vector(ts, entity, metrics, labels, invalid, layout, values)
+    return Vector(ts, entity, metrics, labels, invalid, layout, values, shown)
 
 
 def check_timestamp(value: Any, limits: DecodeLimits) -> float:
@@ -339,8 +345,9 @@ def _entity(value: Any, limits: DecodeLimits) -> str:
     return value
 
 
-#: metrics, invalid entries, and the Vector's layout and values (None: derived from the metrics)
-_Metrics = tuple[dict[str, float | None], tuple[tuple[str, str], ...], Layout | None, np.ndarray | None]
+#: metrics, invalid entries, the Vector's layout and values (None: derived from the metrics), shown values
+_Metrics = tuple[dict[str, float | None], tuple[tuple[str, str], ...], Layout | None, np.ndarray | None,
+                 tuple[str, ...]]
 
 
 def _metrics(value: Any, limits: DecodeLimits) -> _Metrics:
@@ -386,17 +393,17 @@ def _metrics_fast(value: Mapping, limits: DecodeLimits) -> _Metrics | None:
     if int in kinds:
         for name in [name for name, x in out.items() if type(x) is int]:
             out[name] = float(out[name])
-    return out, (), layout, values
+    return out, (), layout, values, ()
 
 
 def _metrics_checked(value: Mapping, limits: DecodeLimits) -> _Metrics:
-    """Entry-by-entry validation: bad values become None and are listed with a reason."""
+    """Entry-by-entry validation: bad values become None and are listed with a reason and their value."""
     max_name, max_abs = limits.max_name_length, limits.max_abs_value
     out: dict[str, float | None] = {}
-    invalid: list[tuple[str, str]] = []
+    bad: list[tuple[str, str, Any]] = []   # (name, reason, value)
     for name, item in value.items():
         if type(name) is not str or not 0 < len(name) <= max_name or not (name.isascii() or is_utf8(name)):
-            invalid.append((_clip_name(name, max_name), "bad_name"))
+            bad.append((_clip_name(name, max_name), "bad_name", item))
             continue
         out[name] = None
         if type(item) is float:
@@ -404,22 +411,23 @@ def _metrics_checked(value: Mapping, limits: DecodeLimits) -> _Metrics:
         elif item is None:
             continue
         elif not is_number(item):
-            invalid.append((name, "not_a_number"))
+            bad.append((name, not_a_number_reason(item), item))
             continue
         else:
             try:
                 x = float(item)
             except OverflowError:  # an integer beyond double range
-                invalid.append((name, "out_of_range"))
+                bad.append((name, "out_of_range", item))
                 continue
         if -max_abs <= x <= max_abs:  # also false for NaN
             out[name] = x
         else:
-            invalid.append((name, "out_of_range" if math.isfinite(x) else "non_finite"))
+            bad.append((name, "out_of_range" if math.isfinite(x) else "non_finite", item))
     if not out:  # only bad names: as empty as "metrics": {}
         raise DecodeError("no_metrics", f"'metrics' has no entry with a usable name "
-                                        f"({len(invalid)} bad, e.g. {invalid[0][0]!r})")
-    return out, tuple(invalid), None, None   # the Vector derives its layout and values
+                                        f"({len(bad)} bad, e.g. {bad[0][0]!r})")
+    # The Vector derives its layout and values.
+    return out, tuple((n, r) for n, r, _ in bad), None, None, tuple(show_value(x) for _, _, x in bad)
 
 
 def check_labels(value: Any) -> dict[str, str]:

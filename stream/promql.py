@@ -24,7 +24,8 @@ names are the same whichever way its data arrived):
   grid, built with numpy.
 - a value is a string as the API sends it (a JSON number is accepted too). "NaN", "+Inf",
   "-Inf" become missing and are listed in `Vector.invalid` as "non_finite"; beyond
-  ``max_abs_value`` "out_of_range"; any other text "not_a_number" (decode.py's rule).
+  ``max_abs_value`` "out_of_range"; any other text "not_a_number" (decode.py's rule; numeric
+  text is the API's encoding here, so "numeric_string" never applies).
 
 Whole-document problems raise `InputError` at once: not JSON, not a response object, an
 error response (``status: error`` with ``errorType``/``error``), a `resultType` other than

@@ -24,7 +24,8 @@ CSV is "wide": a header with `ts`, `entity` (any position) and one column per
 metric. Rows are single physical lines (quoted fields may hold commas, not
 newlines). An empty cell is missing; a numeric cell becomes a float; any other
 cell (also "null", "NA") goes to `vector_from_object` as text and is reported
-there as an invalid value treated as missing, exactly like a string in JSON.
+there as an invalid value treated as missing, exactly like a string in JSON ("not_a_number";
+CSV has no types, so numeric text is a number and "numeric_string" never applies).
 """
 
 from __future__ import annotations

@@ -8,9 +8,9 @@ One sample per message (JSON)::
 `decode_sample` raises only `DecodeError` (reasons in `SAMPLE_REASONS`). `ts`, size and
 JSON parsing follow the vector message exactly (decode.py). `value` is a number or
 null (missing); unlike a vector entry, a single sample with an unusable value has nothing
-else worth keeping, so it is rejected with the per-value reason ("not_a_number",
-"non_finite", "out_of_range"). `name` must not carry a ``{...}`` label set: labels go in
-`labels`, and the assembler writes the series notation itself.
+else worth keeping, so it is rejected with the per-value reason ("numeric_string",
+"not_a_number", "non_finite", "out_of_range"; decode.py's rule). `name` must not carry a
+``{...}`` label set: labels go in `labels`, and the assembler writes the series notation itself.
 
 `SampleAssembler` turns samples (from this message or from OTLP, see otlp.py) into the
 `Vector`s the engine consumes, on a fixed `step`:
@@ -70,7 +70,7 @@ import orjson
 
 from .decode import (DEFAULT_LIMITS, DecodeError, DecodeLimits, Vector, check_labels, check_timestamp,
                      load_json)
-from .values import is_number, is_utf8, kind_of, show
+from .values import is_number, is_utf8, kind_of, not_a_number_reason, show, show_value
 
 __all__ = [
     "REJECT_REASONS",
@@ -89,7 +89,7 @@ SAMPLE_REASONS = frozenset({
     "bad_input", "too_large", "bad_json", "not_object",
     "no_ts", "bad_ts", "naive_ts", "ts_out_of_range",
     "no_name", "bad_name", "bad_labels",
-    "no_value", "not_a_number", "non_finite", "out_of_range",
+    "no_value", "numeric_string", "not_a_number", "non_finite", "out_of_range",
 })
 
 #: Reasons `SampleAssembler.add` rejects a sample.
@@ -148,7 +148,7 @@ def check_value(value: Any, limits: DecodeLimits = DEFAULT_LIMITS) -> float | No
     if value is None:
         return None
     if not is_number(value):
-        raise DecodeError("not_a_number", f"'value' must be a number or null, not {kind_of(value)}")
+        raise DecodeError(not_a_number_reason(value), f"'value' must be a number or null, not {show_value(value)}")
     try:
         x = float(value)
     except OverflowError:  # an integer beyond double range

@@ -4,9 +4,16 @@ Prometheus range queries) so that they accept the same values and describe bad o
 from __future__ import annotations
 
 import numbers
+import re
+from collections.abc import Sequence
 from typing import Any
 
-__all__ = ["is_number", "is_utf8", "kind_of", "show"]
+__all__ = ["describe_invalid", "is_number", "is_utf8", "kind_of", "not_a_number_reason", "show", "show_value"]
+
+#: A JSON number (RFC 8259, section 6), with the JSON whitespace allowed around a value.
+_JSON_NUMBER = re.compile(r"[ \t\n\r]*-?(?:0|[1-9][0-9]*)(?:\.[0-9]+)?(?:[eE][+-]?[0-9]+)?[ \t\n\r]*")
+#: Invalid entries named one by one in a description before "and N more".
+_NAMED = 20
 
 
 def is_number(value: Any) -> bool:
@@ -39,3 +46,26 @@ def show(value: Any, limit: int = 60) -> str:
     """``value`` as Python shows it, clipped to ``limit`` characters for an error message."""
     text = repr(value)
     return text if len(text) <= limit else text[:limit] + "..."
+
+
+def show_value(value: Any) -> str:
+    """A decoded value for a person: scalars as :func:`show` gives them, containers by their kind
+    (a deep or large structure is never rendered)."""
+    return show(value) if value is None or isinstance(value, (str, int, float)) else kind_of(value)
+
+
+def not_a_number_reason(value: Any) -> str:
+    """Why a value that is not a number is invalid: "numeric_string" for a string whose text is a
+    JSON number (RFC 8259, section 6: ``"12"``; the producer should send it without the quotes),
+    else "not_a_number" (words such as ``"n/a"`` or ``"12ms"``, booleans, arrays, objects)."""
+    return "numeric_string" if isinstance(value, str) and _JSON_NUMBER.fullmatch(value) else "not_a_number"
+
+
+def describe_invalid(invalid: Sequence[tuple[str, str]], shown: Sequence[str] = ()) -> str:
+    """A vector's invalid entries for a person: ``cpu_util: not_a_number ('n/a'); lat_ms: ...``, each
+    with its value as :func:`show_value` gave it when the decoder kept it (``shown``, parallel to ``invalid``)."""
+    parts = [f"{name}: {reason}" + (f" ({shown[i]})" if i < len(shown) else "")
+             for i, (name, reason) in enumerate(invalid[:_NAMED])]
+    if len(invalid) > _NAMED:
+        parts.append(f"and {len(invalid) - _NAMED:,} more")
+    return "; ".join(parts)

@@ -26,6 +26,7 @@ from shiftsieve.stream.decode import (
     parse_timestamp,
     vector_from_object,
 )
+from shiftsieve.stream.values import describe_invalid
 
 FAST = settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 
@@ -254,7 +255,13 @@ def test_decode_error_is_a_value_error_with_reason_and_pickles() -> None:
 # --- single bad values are missing, recorded, and lose nothing else ------------------------------------
 
 @pytest.mark.parametrize("text, reason", [
-    ('"0.5"', "not_a_number"), ("true", "not_a_number"), ("[1]", "not_a_number"), ('{"v": 1}', "not_a_number"),
+    # RFC 8259 (section 3) keeps strings and numbers apart: a number in quotes is a string, but one whose
+    # text is a JSON number (section 6 grammar) gets its own reason, since its fix is to drop the quotes.
+    ('"0.5"', "numeric_string"), ('"12"', "numeric_string"), ('"-1.5e3"', "numeric_string"),
+    ('" 12 "', "numeric_string"),
+    ('"n/a"', "not_a_number"), ('"12ms"', "not_a_number"), ('"+1"', "not_a_number"), ('".5"', "not_a_number"),
+    ('"NaN"', "not_a_number"), ('"0x10"', "not_a_number"), ('"\u0661"', "not_a_number"),   # ARABIC-INDIC ONE
+    ("true", "not_a_number"), ("[1]", "not_a_number"), ('{"v": 1}', "not_a_number"),
     ("NaN", "non_finite"), ("Infinity", "non_finite"), ("-Infinity", "non_finite"), ("1e400", "non_finite"),
     ("1" + "0" * 400, "out_of_range"), ("1e301", "out_of_range"), ("-1e301", "out_of_range"),
 ])
@@ -263,6 +270,14 @@ def test_invalid_value_is_missing_and_listed(text: str, reason: str) -> None:
     v = decode_vector(raw)
     assert v.metrics == {"good": 1.5, "bad": None, "gap": None}
     assert v.invalid == (("bad", reason),)
+    assert len(v.shown) == 1 and v.shown[0]   # the value, for the dead letter
+
+
+def test_invalid_values_are_shown_shortened_beside_their_reason() -> None:
+    v = decode_vector(message(metrics={"cpu_util": "n/a", "lat_ms": "12", "ok": 1.0, "long": "x" * 500}))
+    assert v.shown[:2] == ("'n/a'", "'12'") and len(v.shown[2]) <= 64
+    assert describe_invalid(v.invalid, v.shown).startswith("cpu_util: not_a_number ('n/a'); "
+                                                           "lat_ms: numeric_string ('12'); long: not_a_number ('xxx")
 
 
 def test_bad_metric_names_are_left_out_and_listed() -> None:

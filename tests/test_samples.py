@@ -85,7 +85,8 @@ REJECTIONS = {
     "bad_name": message(name='lat{dependency="payments"}'),
     "bad_labels": message(labels={"service": 3}),
     "no_value": message(value=...),
-    "not_a_number": message(value="182"),
+    "numeric_string": message(value="182"),   # a JSON number sent as a string (RFC 8259: a string)
+    "not_a_number": message(value="n/a"),
     "out_of_range": message(value=1e301),
     "non_finite": b'{"ts": 1780000000, "name": "x", "value": -Infinity}',
 }
