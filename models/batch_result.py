@@ -57,6 +57,12 @@ class BatchResult:
     n_iter: np.ndarray           # (B,) solver iterations
     converged: np.ndarray        # (B,) solver reached its tolerance
     units: BatchUnits | None = None   # what the batch was scored with (None while warming up)
+    warmup_rows: int = 0         # the first rows went into the warm-up and were not scored
+
+    @property
+    def scored_iterations(self) -> np.ndarray:
+        """Solver iterations of the scored rows only."""
+        return self.n_iter[self.warmup_rows:]
 
     def expected(self) -> np.ndarray:
         """The baseline's expected value (B, n) in the metrics' own units (NaN while warming up).

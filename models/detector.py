@@ -228,7 +228,7 @@ class EntityDetector:
             self._warmup_rows = []
             if X.shape[0] > need:
                 return self._score_and_learn(X[need:], ts[need:], leading=need)
-        return self._empty(X.shape[0])
+        return replace(self._empty(X.shape[0]), warmup_rows=X.shape[0])
 
     #: Metrics whose leverage exceeds this are neither selected nor scored (see _score_and_learn):
     #: the baseline has a direction mostly their own, leaves them less than a fifth of their noise
@@ -476,4 +476,4 @@ class EntityDetector:
         return BatchResult(result.transitions,
                            *(np.concatenate([getattr(empty, f), getattr(result, f)])
                              for f in ("shift_sigma", "coords", "residual_norm", "n_iter", "converged")),
-                           units=result.units)
+                           units=result.units, warmup_rows=leading)

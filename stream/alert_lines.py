@@ -9,6 +9,7 @@ non-terminal ``run`` keep the JSON contract (:mod:`.events`).
 from __future__ import annotations
 
 import math
+from typing import TextIO
 
 from .timefmt import human_duration, rfc3339
 
@@ -68,3 +69,14 @@ def format_event(event: dict, max_rows: int = MAX_ROWS) -> str:
     if len(event["metrics"]) > max_rows:
         rows.append(f"    ... and {len(event['metrics']) - max_rows} more")
     return "\n".join([head, *rows])
+
+
+class ConsoleEvents:
+    """An event sink that prints each event for a person (:func:`format_event`), flushed at once."""
+
+    def __init__(self, stream: TextIO) -> None:
+        self.stream = stream
+
+    def __call__(self, event: dict) -> None:
+        self.stream.write(format_event(event) + "\n\n")
+        self.stream.flush()

@@ -116,12 +116,6 @@ def _parser() -> argparse.ArgumentParser:
     return parser
 
 
-def print_summary(text: str) -> None:
-    """A summary on stderr: its headline lines prefixed with the program's name, details indented."""
-    for line in text.splitlines():
-        print(line if line.startswith(" ") else f"shiftsieve: {line}", file=sys.stderr)
-
-
 def _evaluate(args: argparse.Namespace) -> int:
     from .evaluate import compare_methods, format_comparison, input_timestamps, parse_methods
     if args.events is not None:
@@ -201,7 +195,7 @@ def main(argv: list[str] | None = None) -> int:
                 summary = replay(args.input, load_config(args.config), events_path=args.events,
                                  dead_letter_path=args.dead_letter, progress=not args.quiet)
             if not args.quiet:
-                print_summary(summary.format())
+                summary.print()
                 if args.report is not None:
                     print(f"shiftsieve: report written to {page}", file=sys.stderr)
             return 0

@@ -24,6 +24,7 @@ needs no threshold (its scores are posterior means, the LASSO's are shrunk).
 from __future__ import annotations
 
 import math
+import sys
 from typing import TYPE_CHECKING, Iterator
 
 import numpy as np
@@ -104,18 +105,19 @@ def encode_event(event: dict) -> bytes:
 class EventFileWriter:
     """Write alert events to a JSON-lines file, each flushed at once so the file can be followed
     (``tail -f``) and a crash loses none; a context manager.  ``append`` keeps what a previous
-    run wrote (the service), otherwise the file is replaced (a replay)."""
+    run wrote (the service), otherwise the file is replaced (a replay); ``-`` is stdout."""
 
     def __init__(self, path: str, append: bool = False) -> None:
         self.path = path
-        self._file = open(path, "ab" if append else "wb")
+        self._file = sys.stdout.buffer if path == "-" else open(path, "ab" if append else "wb")
 
     def __call__(self, event: dict) -> None:
         self._file.write(encode_event(event))
         self._file.flush()
 
     def close(self) -> None:
-        self._file.close()
+        if self.path != "-":
+            self._file.close()
 
     def __enter__(self) -> "EventFileWriter":
         return self

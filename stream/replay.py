@@ -43,6 +43,17 @@ class ReplaySummary:
     coverage: list[EntityCoverage] = field(default_factory=list)   # per entity: vectors, scored, warm-up
     still_open: list[OpenIncident] = field(default_factory=list)   # incidents firing when the input ended
 
+    @classmethod
+    def of(cls, pipeline: Pipeline, seconds: float) -> "ReplaySummary":
+        """What ``pipeline`` and its engine did so far (a replay at its end, ``run`` when it stops)."""
+        engine = pipeline.engine
+        return cls(vectors=engine.counts.processed, rejected=pipeline.rejected,
+                   rejected_by_reason=dict(pipeline.rejected_by_reason), entities=len(engine.entities),
+                   incidents=engine.counts.incidents, events=engine.counts.events,
+                   solver_unconverged=engine.counts.solver_unconverged, rewarmed=list(engine.rewarmed),
+                   coverage=entity_coverage(engine.registry.records()),
+                   still_open=open_incidents(engine.registry.records()), seconds=seconds)
+
     @property
     def rate(self) -> float:
         return self.vectors / self.seconds if self.seconds > 0 else float("inf")
@@ -57,6 +68,13 @@ class ReplaySummary:
         (entities that never warmed up, incidents still open)."""
         lines = [self._figures(), *coverage_notes(self.coverage), *open_incident_notes(self.still_open)]
         return "\n".join(lines)
+
+    def print(self, stream: TextIO | None = None) -> None:
+        """The summary on ``stream`` (stderr): headline lines prefixed with the program's name, details
+        indented."""
+        stream = stream or sys.stderr
+        for line in self.format().splitlines():
+            print(line if line.startswith(" ") else f"shiftsieve: {line}", file=stream)
 
     def _figures(self) -> str:
         reasons = ", ".join(f"{k} {v}" for k, v in sorted(self.rejected_by_reason.items()))
@@ -148,10 +166,4 @@ def replay(path: str | Path, config: Config, *, events_path: str | None = None,
     accepted = engine.counts.processed
     if accepted == 0:
         raise InputError(f"{path}: no valid vector in the input ({pipeline.rejected} lines rejected)")
-    return ReplaySummary(vectors=accepted, rejected=pipeline.rejected,
-                         rejected_by_reason=dict(pipeline.rejected_by_reason), entities=len(engine.entities),
-                         incidents=engine.counts.incidents, events=engine.counts.events,
-                         solver_unconverged=engine.counts.solver_unconverged, rewarmed=engine.rewarmed,
-                         coverage=entity_coverage(engine.registry.records()),
-                         still_open=open_incidents(engine.registry.records()),
-                         seconds=time.perf_counter() - started)
+    return ReplaySummary.of(pipeline, time.perf_counter() - started)

@@ -20,16 +20,18 @@ import threading
 import time
 from contextlib import ExitStack
 
-from .config import Config
+from .alert_lines import ConsoleEvents
+from .config import Config, ConfigError
 from .decode import Vector
 from .endpoints import Endpoints
-from .engine import Engine
+from .engine import Engine, EventSink
 from .events import EventFileWriter
 from .exporter import Exporter
 from .lines import Rejected
 from .pipeline import Pipeline
 from .readers import DeadLetterWriter
 from .registry import EntityRecord
+from .replay import ReplaySummary
 from .sources import KafkaInput, LineSource, Message
 from .state import SnapshotError, StateDirectory
 
@@ -46,17 +48,24 @@ class Service:
         self.listen = listen or config.http.listen
         self.exporter = Exporter(max_series=config.http.max_series)
         self._emitted: list[dict] = []   # events of the current flush, for the exporter's counters
-        self.engine = Engine.from_config(config, sinks=[self._emitted.append])
+        self.engine = Engine.from_config(config, sinks=[self._emitted.append],
+                                         observers=[lambda model, ts, X, result:
+                                                    self.exporter.iterations.observe_many(result.scored_iterations)])
         self.engine.registry.on_remove.append(self.exporter.forget)   # a dropped entity's series go with it
         self.pipeline = Pipeline(self.engine, config, reject_sinks=[self._dead_letter],
                                  admit=self._admit, admitted=self._admitted)
         self._sample_counts: dict[str, int] = {}
         self.kafka_sink = None
         self.state = StateDirectory(config.state.directory) if config.state.directory else None
+        if self.state is not None:
+            self.exporter.snapshot_age.set_function(self._snapshot_age)
+        else:   # no snapshots are taken: an age of 0 would say they are all fresh
+            self.exporter.registry.unregister(self.exporter.snapshot_age)
         self._lock = threading.RLock()   # engine and state: the poll loop vs. rebalance callbacks
         self.source = None
         self.dead: DeadLetterWriter | None = None
         self._snapshot_at = time.monotonic()
+        self._unsaved_since: float | None = None   # when the oldest change not yet in a snapshot was made
         self._flushed_at = time.monotonic()
         self._busy = 0.0                 # seconds spent decoding and feeding since the last flush
         self._oldest_ms: int | None = None   # Kafka timestamp of the oldest record not yet in the gauges
@@ -71,10 +80,9 @@ class Service:
         if threading.current_thread() is threading.main_thread():
             signal.signal(signal.SIGTERM, self.stop)
             signal.signal(signal.SIGINT, self.stop)
+        started = time.perf_counter()
         with ExitStack() as stack:
-            sinks = []
-            if self.events_path:
-                sinks.append(stack.enter_context(EventFileWriter(self.events_path, append=True)))
+            sinks = [self._event_output(stack)]
             self.dead = stack.enter_context(DeadLetterWriter(self.dead_letter_path, source=self.source_url)) \
                 if self.dead_letter_path else None
             kafka = self.source_url.startswith("kafka://")
@@ -98,8 +106,15 @@ class Service:
             else:
                 source = self.source = LineSource(self.source_url, limits=self.config.decode_limits())
             self._snapshot_at = time.monotonic()
-            self.endpoints = Endpoints(self.listen, self.exporter.exposition, lambda: self.ready).start()
+            try:
+                self.endpoints = Endpoints(self.listen, self.exporter.exposition, lambda: self.ready).start()
+            except OSError as exc:   # e.g. the address is in use by another process
+                raise ConfigError(f"cannot listen on {self.listen} (http.listen, --listen): "
+                                  f"{exc.strerror or exc}") from None
             stack.callback(self.endpoints.stop)
+            print(f"shiftsieve: run: reading {self._source_name()} ({self.config.source.encoding} messages); "
+                  f"/metrics, /healthz and /readyz on http://{self.endpoints.address}; alerts to "
+                  f"{self._events_name()}", file=sys.stderr, flush=True)
             self.ready = not kafka
             poll = self.config.source.poll_seconds
             max_delay = self.config.engine.max_delay_seconds
@@ -114,7 +129,7 @@ class Service:
                         self.flush()
                     if self.state is not None and \
                             time.monotonic() - self._snapshot_at >= self.config.state.snapshot_seconds:
-                        self._snapshot()
+                        self.snapshot()
                     durable = not engine.queued and (self.state is None or not engine.registry.unsaved)
                 if kafka:
                     if durable:
@@ -133,16 +148,35 @@ class Service:
                 self.pipeline.close_steps()
                 self.flush()
                 if self.state is not None:
-                    self._snapshot()
+                    self.snapshot()
             if kafka:
                 source.commit(self._held())
+        ReplaySummary.of(self.pipeline, time.perf_counter() - started).print()
         return 0
+
+    def _event_output(self, stack: ExitStack) -> EventSink:
+        """Where alerts go: the --events file (JSON lines, appended; ``-`` is stdout), else stdout,
+        for a person on a terminal and as JSON lines for a program otherwise."""
+        if self.events_path is None and sys.stdout.isatty():
+            return ConsoleEvents(sys.stdout)
+        return stack.enter_context(EventFileWriter(self.events_path or "-", append=True))
+
+    def _events_name(self) -> str:
+        if self.events_path is None and sys.stdout.isatty():
+            return "this terminal"
+        if self.events_path in (None, "-"):
+            return "stdout (JSON lines)"
+        return f"{self.events_path} (JSON lines, appended)"
+
+    def _source_name(self) -> str:
+        return "stdin" if self.source_url == "-" else self.source_url
 
     def take(self, messages: list[Message | Rejected]) -> None:
         """One poll's messages: decode and feed them (an entity's batch runs once it is full)."""
         started = time.perf_counter()
         self.exporter.consumed.inc(len(messages))   # counters once per poll, not per message
         self.exporter.decoded.inc(self.pipeline.take(messages))
+        self._note_unsaved()
         stamps = getattr(self.source, "timestamps_ms", None)
         if stamps and min(stamps) >= 0 and self._oldest_ms is None:
             self._oldest_ms = min(stamps)
@@ -156,6 +190,7 @@ class Service:
         makes catching up fast (see DEVELOPERS.md)."""
         started = time.perf_counter()
         self.engine.flush()
+        self._note_unsaved()
         self._sync_sample_counts()
         self.exporter.observe_events(self._emitted)
         self._emitted.clear()
@@ -181,7 +216,7 @@ class Service:
         with self._lock:
             self.flush()
             if self.state is not None:
-                self._snapshot()
+                self.snapshot()
             self.source.commit(self._held())
             self._forget(partitions)
 
@@ -248,7 +283,7 @@ class Service:
         stream, offsets = restored
         return engine.adopt(stream, covered=offsets)
 
-    def _snapshot(self) -> None:
+    def snapshot(self) -> None:
         """Write the snapshots of the entities that changed, covering everything consumed so far."""
         if self.engine.queued:
             self.flush()
@@ -260,7 +295,17 @@ class Service:
             record.covered = positions
         registry.unsaved.clear()
         self._snapshot_at = time.monotonic()
-        self.exporter.snapshot_age.set(0.0)
+        self._unsaved_since = None
+
+    def _note_unsaved(self) -> None:
+        """Remember when model state first changed after the last snapshot (to one poll)."""
+        if self._unsaved_since is None and self.state is not None and self.engine.registry.unsaved:
+            self._unsaved_since = time.monotonic()
+
+    def _snapshot_age(self) -> float:
+        """``shiftsieve_snapshot_age_seconds``: how long the oldest unsaved change has waited."""
+        since = self._unsaved_since
+        return 0.0 if since is None else time.monotonic() - since
 
     def _held(self) -> dict[str, int] | None:
         """Per partition, the oldest offset whose samples wait in the assembler's open steps."""
