@@ -3,7 +3,7 @@
     shiftsieve demo [--scenario NAME]                 replay a bundled incident, print the alerts
     shiftsieve replay INPUT --events OUT.jsonl [--config FILE] [--dead-letter FILE]
                       [--report DIR [--labels LABELS] [--budget ALERTS_PER_DAY [--quiet-until TS]]]
-    shiftsieve run [--config FILE] [--source URL] [--events FILE] [--listen HOST:PORT]
+    shiftsieve run [--config FILE] [--source URL] [--events FILE|-] [--listen HOST:PORT]
     shiftsieve evaluate INPUT LABELS [--config FILE] [--methods a,b,...] [--json]
     shiftsieve evaluate --events EVENTS [INPUT] LABELS [--config FILE] [--vectors N] [--json]
     shiftsieve tune INPUT --budget ALERTS_PER_DAY [--quiet-until TS] [--labels LABELS] [--config FILE] [--write FILE]
@@ -23,6 +23,7 @@ import sys
 import orjson
 
 from .config import ENCODINGS, ConfigError, load_config, render
+from .coverage import print_notes
 from .demo import DEFAULT_SCENARIO
 from .labels import EvaluationError, load_labels
 from .scoring import format_table, load_events, score_events
@@ -33,9 +34,19 @@ from .report import ReportError
 EXIT_USAGE = 2
 
 
+def _version() -> str:
+    """The installed distribution's version (pyproject.toml)."""
+    from importlib.metadata import PackageNotFoundError, version
+    try:
+        return version("shiftsieve")
+    except PackageNotFoundError:   # run from a checkout that was never installed
+        return "unknown (not installed)"
+
+
 def _parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="shiftsieve",
                                      description="Streaming sparse-change detector for infrastructure telemetry.")
+    parser.add_argument("--version", action="version", version=f"%(prog)s {_version()}")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     demo = sub.add_parser("demo", help="replay a bundled incident and print its alerts (no broker needed)")
@@ -63,18 +74,22 @@ def _parser() -> argparse.ArgumentParser:
 
     run = sub.add_parser("run", help="run the detector as a service on a stream (stdin by default)")
     run.add_argument("--config", metavar="FILE", help="TOML configuration")
-    run.add_argument("--source", metavar="URL", help="kafka://HOST:PORT/TOPIC?group=NAME, a file path, or - for "
-                     "stdin (default: source.url)")
-    run.add_argument("--events", metavar="FILE", help="append alert events as JSON lines")
+    run.add_argument("--source", metavar="URL", help="kafka://HOST:PORT[,HOST:PORT...]/TOPIC?group=NAME (one or "
+                     "more bootstrap brokers), a file path, or - for stdin (default: source.url)")
+    run.add_argument("--events", metavar="FILE", help="append alert events to FILE as JSON lines (- for stdout); "
+                     "without it alerts go to stdout: lines for a person on a terminal, JSON lines otherwise")
     run.add_argument("--listen", metavar="HOST:PORT", help="address of /metrics, /healthz, /readyz "
                                                            "(default: http.listen, 127.0.0.1:9471)")
     run.add_argument("--dead-letter", metavar="FILE", help="write rejected messages here with a reason")
 
     ev = sub.add_parser("evaluate", help="compare shiftsieve with baseline detectors on a labelled input "
-                                         "(or score an events file with --events)")
-    ev.add_argument("paths", nargs="+", metavar="INPUT LABELS",
-                    help="replay input and its labels file; with --events, LABELS or INPUT LABELS (the input "
-                         "adds false alerts per entity-day and point-adjusted F1)")
+                                         "(or score an events file with --events)",
+                        usage="shiftsieve evaluate INPUT LABELS [--config FILE] [--methods a,b,...] [--json]\n"
+                              "       shiftsieve evaluate --events EVENTS [INPUT] LABELS [--config FILE] "
+                              "[--vectors N] [--json]")
+    ev.add_argument("paths", nargs="+", metavar="PATH",
+                    help="INPUT LABELS: one replay input and its labels file; with --events: LABELS, or INPUT "
+                         "LABELS (the input adds false alerts per entity-day and point-adjusted F1)")
     ev.add_argument("--events", metavar="EVENTS", help="score this alert-events file instead of running methods")
     ev.add_argument("--config", metavar="FILE", help="TOML configuration")
     ev.add_argument("--methods", metavar="a,b,...", help="methods to compare (default: all): "
@@ -117,27 +132,33 @@ def _parser() -> argparse.ArgumentParser:
 
 
 def _evaluate(args: argparse.Namespace) -> int:
-    from .evaluate import compare_methods, format_comparison, input_timestamps, parse_methods
+    from .evaluate import compare_vectors, format_comparison, input_notes, input_timestamps, load_vectors, \
+        parse_methods, vector_timestamps
     if args.events is not None:
         if len(args.paths) not in (1, 2) or args.methods or (args.config and len(args.paths) == 1):
             raise EvaluationError("evaluate --events takes EVENTS [INPUT] LABELS (no --methods; --config only "
                                   "with INPUT)")
+        config = load_config(args.config)
         events, labels = load_events(args.events), load_labels(args.paths[-1])
-        timestamps = input_timestamps(args.paths[0], load_config(args.config)) if len(args.paths) == 2 else None
+        timestamps = input_timestamps(args.paths[0], config) if len(args.paths) == 2 else None
         vectors = args.vectors
         if vectors is None and timestamps is not None:
             vectors = sum(ts.size for ts in timestamps.values())
         result = score_events(events, labels, vectors=vectors, timestamps=timestamps)
         print(orjson.dumps(result.to_dict(), option=orjson.OPT_INDENT_2).decode() if args.json
               else format_table(result))
+        if timestamps is not None:
+            print_notes(input_notes(timestamps, config, labels))
         return 0
     if len(args.paths) != 2 or args.vectors is not None:
         raise EvaluationError("evaluate takes INPUT LABELS (or --events EVENTS LABELS; --vectors only with --events)")
     methods = parse_methods(args.methods) if args.methods is not None else None
     config, labels = load_config(args.config), load_labels(args.paths[1])
-    rows = compare_methods(args.paths[0], config, labels, methods=methods)
+    vectors = load_vectors(args.paths[0], config)
+    rows = compare_vectors(vectors, config, labels, methods=methods)
     print(orjson.dumps([r.to_dict() for r in rows], option=orjson.OPT_INDENT_2).decode() if args.json
           else format_comparison(rows))
+    print_notes(input_notes(vector_timestamps(vectors), config, labels))
     return 0
 
 

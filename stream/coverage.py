@@ -9,8 +9,10 @@ replay summary, the service's end-of-input summary, the report and ``evaluate`` 
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable
+import sys
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
+from typing import TextIO
 
 import numpy as np
 
@@ -74,6 +76,13 @@ def entity_coverage(records: Iterable[EntityRecord]) -> list[EntityCoverage]:
                            r.model.last_ts) for r in records]
 
 
+def timestamp_coverage(timestamps: Mapping[str, np.ndarray], warmup: int) -> list[EntityCoverage]:
+    """Coverage of an input read without running the engine (``evaluate``): per entity its
+    increasing timestamps and the configured warm-up."""
+    return [EntityCoverage(entity, int(ts.size), warmup, float(ts[0]) if ts.size else None,
+                           float(ts[-1]) if ts.size else float("-inf")) for entity, ts in timestamps.items()]
+
+
 def open_incidents(records: Iterable[EntityRecord]) -> list[OpenIncident]:
     """The incidents still open on ``records``, oldest first."""
     found = []
@@ -101,8 +110,8 @@ def coverage_notes(coverage: list[EntityCoverage]) -> list[str]:
         return []
     lines = []
     if len(cold) == len(coverage):
-        lines.append("warning: NOTHING WAS SCORED: no entity finished its warm-up, so no incident says nothing "
-                     "about this input.")
+        lines.append("warning: NOTHING WAS SCORED: no entity finished its warm-up, so the absence of incidents "
+                     "says nothing about this input.")
     else:
         lines.append(f"warning: {len(cold)} of {len(coverage)} entities never warmed up; nothing they sent was "
                      f"scored:")
@@ -130,3 +139,11 @@ def open_incident_notes(incidents: list[OpenIncident], top: int = 3) -> list[str
     if len(incidents) > NAMED:
         lines.append(f"  ... and {len(incidents) - NAMED} more")
     return lines
+
+
+def print_notes(lines: Iterable[str], stream: TextIO | None = None) -> None:
+    """Lines for a person on ``stream`` (stderr): headlines prefixed with the program's name, details
+    (indented lines) as they are."""
+    stream = stream or sys.stderr
+    for line in lines:
+        print(line if line.startswith(" ") else f"shiftsieve: {line}", file=stream)

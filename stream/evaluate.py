@@ -40,6 +40,7 @@ from shiftsieve.models.reference import EWMAZScoreMethod, HalfSpaceTreesMethod, 
 
 from .assemble import EntityModel
 from .config import Config
+from .coverage import NAMED, coverage_notes, timestamp_coverage
 from .decode import Vector
 from .engine import Engine
 from .events import events_from_transitions
@@ -112,7 +113,7 @@ def parse_methods(text: str) -> list[str]:
     return check_methods([name.strip() for name in text.split(",") if name.strip()])
 
 
-def _load(path: str | Path, config: Config) -> list[Vector]:
+def load_vectors(path: str | Path, config: Config) -> list[Vector]:
     """The input's valid vectors in file order (undecodable lines are skipped, as replay does)."""
     with open_input(path, config) as records:
         vectors = [r for r in records if not isinstance(r, Rejected)]
@@ -137,7 +138,25 @@ def _timestamps(by_entity: dict[str, list[Vector]]) -> dict[str, np.ndarray]:
 
 def input_timestamps(path: str | Path, config: Config) -> dict[str, np.ndarray]:
     """Per entity, the increasing timestamps of the input's vectors (for scoring an events file)."""
-    return _timestamps(_in_order(_load(path, config)))
+    return vector_timestamps(load_vectors(path, config))
+
+
+def vector_timestamps(vectors: list[Vector]) -> dict[str, np.ndarray]:
+    """Per entity, the increasing timestamps of ``vectors`` (those the engine would accept)."""
+    return _timestamps(_in_order(vectors))
+
+
+def input_notes(timestamps: dict[str, np.ndarray], config: Config, labels: Labels) -> list[str]:
+    """What a person must know before reading the scores: entities that never warmed up (every
+    method scores nothing on them) and labelled entities that are not in the input."""
+    notes = coverage_notes(timestamp_coverage(timestamps, config.model.warmup))
+    absent = labels.missing_from(set(timestamps))
+    if absent:
+        shown = ", ".join(absent[:NAMED]) + (f" and {len(absent) - NAMED} more" if len(absent) > NAMED else "")
+        notes.append(f"warning: the labels name {len(absent)} entit{'y' if len(absent) == 1 else 'ies'} not in the "
+                     f"input ({shown}); their incidents can only be missed. Is it the right labels file, and do "
+                     f"the entity names match (source.entity_labels)?")
+    return notes
 
 
 def _entities(by_entity: dict[str, list[Vector]], engine: Engine, config: Config, labels: Labels) -> list[_Entity]:
@@ -240,7 +259,7 @@ def _shiftsieve(vectors: list[Vector], config: Config) -> list[dict]:
 def compare_methods(path: str | Path, config: Config, labels: Labels, *,
                     methods: Sequence[str] | None = None) -> list[MethodScore]:
     """Run each method on the input at ``path``, score it against ``labels``; rows in ``methods`` order."""
-    return compare_vectors(_load(path, config), config, labels, methods=methods)
+    return compare_vectors(load_vectors(path, config), config, labels, methods=methods)
 
 
 def compare_vectors(vectors: list[Vector], config: Config, labels: Labels, *, methods: Sequence[str] | None = None,

@@ -61,6 +61,12 @@ class Labels:
             return DEFAULT_TOLERANCE_SECONDS
         return self.tolerance_steps * self.step_seconds
 
+    def missing_from(self, entities: set[str]) -> list[str]:
+        """Entities the labels name (incidents, ``scored_from``) that are not in ``entities``: a
+        mismatched file or entity naming, since their incidents can only be missed."""
+        named = {lab.entity for lab in self.incidents} | set(self.scored_from)
+        return sorted(named - entities)
+
     def scored_after(self, entity: str) -> float:
         """The entity's first scored ts (-inf: scored throughout)."""
         return self.scored_from.get(entity, -math.inf)

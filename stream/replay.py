@@ -18,7 +18,7 @@ from typing import Callable, TextIO
 
 from .config import Config
 from .coverage import EntityCoverage, OpenIncident, coverage_notes, entity_coverage, open_incident_notes, \
-    open_incidents, scored_total
+    open_incidents, print_notes, scored_total
 from .decode import Vector
 from .engine import BatchObserver, Engine, EventSink
 from .events import EventFileWriter
@@ -72,9 +72,7 @@ class ReplaySummary:
     def print(self, stream: TextIO | None = None) -> None:
         """The summary on ``stream`` (stderr): headline lines prefixed with the program's name, details
         indented."""
-        stream = stream or sys.stderr
-        for line in self.format().splitlines():
-            print(line if line.startswith(" ") else f"shiftsieve: {line}", file=stream)
+        print_notes(self.format().splitlines(), stream)
 
     def _figures(self) -> str:
         reasons = ", ".join(f"{k} {v}" for k, v in sorted(self.rejected_by_reason.items()))
