@@ -55,6 +55,7 @@ class Service:
         self.pipeline = Pipeline(self.engine, config, reject_sinks=[self._dead_letter],
                                  admit=self._admit, admitted=self._admitted)
         self._sample_counts: dict[str, int] = {}
+        self._invalid_counts: dict[str, int] = {}   # pipeline.invalid_values as last exported
         self.kafka_sink = None
         self.state = StateDirectory(config.state.directory) if config.state.directory else None
         if self.state is not None:
@@ -107,7 +108,7 @@ class Service:
                 source = self.source = LineSource(self.source_url, limits=self.config.decode_limits())
             self._snapshot_at = time.monotonic()
             try:
-                self.endpoints = Endpoints(self.listen, self.exporter.exposition, lambda: self.ready).start()
+                self.endpoints = Endpoints(self.listen, self._exposition, lambda: self.ready).start()
             except OSError as exc:   # e.g. the address is in use by another process
                 raise ConfigError(f"cannot listen on {self.listen} (http.listen, --listen): "
                                   f"{exc.strerror or exc}") from None
@@ -154,6 +155,11 @@ class Service:
         ReplaySummary.of(self.pipeline, time.perf_counter() - started).print()
         return 0
 
+    def _exposition(self) -> bytes:
+        """/metrics, taken between polls: a scrape never sees an incident's series half updated."""
+        with self._lock:
+            return self.exporter.exposition()
+
     def _event_output(self, stack: ExitStack) -> EventSink:
         """Where alerts go: the --events file (JSON lines, appended; ``-`` is stdout), else stdout,
         for a person on a terminal and as JSON lines for a program otherwise."""
@@ -192,6 +198,7 @@ class Service:
         self.engine.flush()
         self._note_unsaved()
         self._sync_sample_counts()
+        self._sync_invalid_values()
         self.exporter.observe_events(self._emitted)
         self._emitted.clear()
         for entity, why in self.engine.rewarmed:
@@ -330,10 +337,18 @@ class Service:
             self.exporter.samples.labels("skipped").inc(skipped - self._sample_counts.get("skipped", 0))
         self._sample_counts = {**assembler.counts, "skipped": skipped}
 
+    def _sync_invalid_values(self) -> None:
+        """Values treated as missing (counted by the pipeline) into shiftsieve_values_invalid_total."""
+        for reason, total in self.pipeline.invalid_values.items():
+            if total != self._invalid_counts.get(reason, 0):
+                self.exporter.invalid_values.labels(reason).inc(total - self._invalid_counts.get(reason, 0))
+        self._invalid_counts = dict(self.pipeline.invalid_values)
+
     def _dead_letter(self, record: Rejected, partition: str) -> None:
-        self.exporter.dead.labels(record.reason).inc()
+        if not record.kept:   # a kept message's vector was processed: its values are counted apart
+            self.exporter.dead.labels(record.reason).inc()
         if self.dead is not None:
             self.dead.write(record)
         if self.kafka_sink is not None and self.config.kafka.dead_letter_topic:
             self.kafka_sink.send_dead_letter(self.config.kafka.dead_letter_topic, record.raw, record.reason,
-                                             f"{self.source_url}@{record.line}")
+                                             f"{self.source_url}@{record.line}", kept=record.kept)

@@ -28,7 +28,6 @@ sensitive setting whose rate fits the budget; then it says what that setting fou
 
 from __future__ import annotations
 
-import datetime as dt
 import math
 import time
 from dataclasses import dataclass
@@ -42,6 +41,7 @@ from .labels import DEFAULT_TOLERANCE_SECONDS, Labels
 from .scoring import Evaluation, format_table, predicted_incidents, score_events
 from .lines import InputError, Rejected
 from .replay import open_input, replay
+from .timefmt import rfc3339
 
 #: The search grid, each axis from most to least sensitive (module docstring).
 FALSE_ALARMS: tuple[float, ...] = (1e-3, 3e-4, 1e-4, 3e-5, 1e-5)
@@ -137,10 +137,6 @@ def _scan(path: Path, config: Config) -> _Span:
     return _Span(np.array(stamps), scored_from)
 
 
-def _when(ts: float) -> str:
-    return dt.datetime.fromtimestamp(ts, dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
-
-
 def _quiet_until(span: _Span, labels: Labels | None, quiet_until: float | None) -> float:
     first, last = float(span.ts.min()), float(span.ts.max())
     origin = "--quiet-until"
@@ -149,13 +145,13 @@ def _quiet_until(span: _Span, labels: Labels | None, quiet_until: float | None) 
         origin = "the first labelled incident" if starts else "half of the input's span"
         quiet_until = min(starts) - DEFAULT_TOLERANCE_SECONDS if starts else first + (last - first) / 2
     if not first < quiet_until <= last:
-        raise TuneError(f"quiet period end {_when(quiet_until)} (from {origin}) lies outside the input "
-                        f"({_when(first)} to {_when(last)})")
+        raise TuneError(f"quiet period end {rfc3339(quiet_until)} (from {origin}) lies outside the input "
+                        f"({rfc3339(first)} to {rfc3339(last)})")
     if labels is not None:
         inside = [lab for lab in labels.incidents if lab.start - DEFAULT_TOLERANCE_SECONDS < quiet_until]
         if inside:
-            raise TuneError(f"labelled incident on {inside[0].entity} at {_when(inside[0].start)} lies in the "
-                            f"quiet period; end it before {_when(inside[0].start - DEFAULT_TOLERANCE_SECONDS)}")
+            raise TuneError(f"labelled incident on {inside[0].entity} at {rfc3339(inside[0].start)} lies in the "
+                            f"quiet period; end it before {rfc3339(inside[0].start - DEFAULT_TOLERANCE_SECONDS)}")
     return quiet_until
 
 
@@ -175,7 +171,7 @@ def tune(path: str | Path, config: Config, *, budget_per_day: float, quiet_until
     until = _quiet_until(span, labels, quiet_until)
     scored = [ts for ts in span.scored_from.values() if ts < until]
     if not scored:
-        raise TuneError(f"quiet period up to {_when(until)} is too short: no entity is scored before it "
+        raise TuneError(f"quiet period up to {rfc3339(until)} is too short: no entity is scored before it "
                         f"(model.warmup = {config.model.warmup} vectors per entity); choose a later "
                         f"--quiet-until or a shorter warm-up")
     quiet_days = (until - min(scored)) / SECONDS_PER_DAY
@@ -217,7 +213,7 @@ def _setting(c: Candidate) -> str:
 
 
 def _quiet_text(result: TuneResult) -> str:
-    return (f"quiet period up to {_when(result.quiet_until)} "
+    return (f"quiet period up to {rfc3339(result.quiet_until)} "
             f"({result.quiet_days * 24:.2f} h scored after warm-up)")
 
 
@@ -268,7 +264,7 @@ def format_tuning(result: TuneResult) -> str:
         lines.append("look at what alerts there (shiftsieve replay --events), or choose a longer or quieter period")
         return "\n".join(lines)
     lines.append(f"recommended: {_setting(r.recommended)}: the most sensitive setting within the budget")
-    lines.append(f"after {_when(r.quiet_until)} it opens {r.rest_incidents} incident"
+    lines.append(f"after {rfc3339(r.quiet_until)} it opens {r.rest_incidents} incident"
                  f"{'' if r.rest_incidents == 1 else 's'}")
     if r.rest is not None:
         lines.extend("  " + line for line in format_table(r.rest).splitlines())
