@@ -29,6 +29,7 @@ from .config import Config, EngineSection
 from .decode import Vector
 from .events import events_from_transitions, window_metrics
 from .registry import EntityRecord, EntityRegistry, IncidentWindow
+from .reorder import OrderRefusal, order_refusal
 
 EventSink = Callable[[dict], None]
 #: Called after each successfully scored batch with (stream, ts, X, result), result's columns
@@ -43,7 +44,8 @@ class EngineCounts:
     vectors: int = 0
     processed: int = 0
     rejected_entity_limit: int = 0
-    rejected_out_of_order: int = 0
+    rejected_out_of_order: int = 0   # older than the entity's last accepted vector
+    rejected_duplicate_ts: int = 0   # at the same time as the entity's last accepted vector
     solver_iterations: int = 0
     solver_unconverged: int = 0
     events: int = 0
@@ -133,6 +135,7 @@ class Engine:
         self.counts = EngineCounts()
         self.rewarmed: list[tuple[str, str]] = []   # (entity, why) since the caller last cleared it
         self.queued = 0   # vectors fed and not yet run
+        self.order_refusals: dict[str, OrderRefusal] = {}   # per reason refused for time order: the first
 
     @classmethod
     def from_config(cls, config: Config, **kwargs) -> "Engine":
@@ -143,8 +146,9 @@ class Engine:
     def feed(self, vector: Vector) -> str | None:
         """Queue one vector; its entity's batch runs when it is full.
 
-        Returns ``None``, or the reason the vector was refused (``entity_limit``,
-        ``out_of_order``) so the caller can dead-letter it.
+        Returns ``None``, or the reason the vector was refused (``entity_limit``, or
+        ``duplicate_ts`` / ``out_of_order`` by :func:`.reorder.order_refusal`) so the caller can
+        dead-letter it.
         """
         self.counts.vectors += 1
         record = self.registry.get(vector.entity)
@@ -158,15 +162,37 @@ class Engine:
             self.registry.touch(record)
             if record.first_ts is None:
                 record.first_ts = vector.ts
-        last = pending[-1].ts if pending else record.model.last_ts
-        if vector.ts <= last:   # duplicates and late samples would corrupt the baseline
-            self.counts.rejected_out_of_order += 1
-            return "out_of_order"
+        last = self._newest(record)
+        refused = order_refusal(vector.ts, last)
+        if refused is not None:   # a step twice or backwards would corrupt the baseline
+            return self._refuse_order(refused, vector, last)
         pending.append(vector)
         self.queued += 1
         if len(pending) >= self.batch_size:
             self._run(record)
         return None
+
+    def last_accepted_ts(self, entity: str) -> float:
+        """The time of the entity's newest vector taken (queued or run); -inf for an unknown entity."""
+        record = self.registry.get(entity)
+        return float("-inf") if record is None else self._newest(record)
+
+    @staticmethod
+    def _newest(record: EntityRecord) -> float:
+        return record.pending[-1].ts if record.pending else record.model.last_ts
+
+    def _refuse_order(self, reason: str, vector: Vector, last: float) -> str:
+        """Count a refusal for time order and keep what the summary says about it."""
+        if reason == "duplicate_ts":
+            self.counts.rejected_duplicate_ts += 1
+        else:
+            self.counts.rejected_out_of_order += 1
+        first = self.order_refusals.get(reason)
+        if first is None:
+            self.order_refusals[reason] = OrderRefusal(vector.entity, last, vector.ts, last - vector.ts)
+        else:
+            first.largest_gap = max(first.largest_gap, last - vector.ts)
+        return reason
 
     def adopt(self, stream: EntityModel, covered: dict[str, int] | None = None) -> EntityRecord:
         """Take over an entity restored from a snapshot that includes the ``covered`` offsets."""

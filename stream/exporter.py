@@ -103,6 +103,9 @@ class Exporter:
                                registry=r)
         self.dead = Counter("shiftsieve_messages_dead_lettered_total", "Messages dead-lettered, by reason",
                             ["reason"], registry=r)
+        self.invalid_values = Counter("shiftsieve_values_invalid_total", "Metric values treated as missing in "
+                                      "vectors that were taken, by reason (numeric_string, not_a_number, "
+                                      "non_finite, out_of_range, bad_name)", ["reason"], registry=r)
         self.samples = Counter("shiftsieve_samples_total", "Samples of the sample and otlp_json encodings, by "
                                "outcome (accepted or a rejection reason; duplicate and out_of_order count accepted samples "
                                "again, skipped counts unsupported OTLP points)", ["outcome"],

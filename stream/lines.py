@@ -28,13 +28,19 @@ BOM = b"\xef\xbb\xbf"         # a UTF-8 byte order mark, tolerated at the start 
 
 @dataclass(frozen=True, slots=True)
 class Rejected:
-    """A line or message that gave no vector: where, why, and its original bytes (capped; see `truncated`)."""
+    """A line or message that gave no vector: where, why, and its original bytes (capped; see `truncated`).
+
+    With ``kept`` it is a dead letter of a message whose vector was used all the same, with some
+    entries treated as missing (reason "invalid_values"): written where rejections go, so the
+    producer's mistake can be seen, but counted apart from them.
+    """
 
     line: int
     reason: str
     detail: str
     raw: bytes
     truncated: bool = False  # raw holds only the first raw_cap bytes of the line
+    kept: bool = False       # its vector was used (not a rejection)
 
 
 class InputError(Exception):

@@ -8,7 +8,9 @@
 ``run`` feeds it the messages of its source (:mod:`.sources`), decoded in the configured
 encoding.  Both count and dead-letter the same way: a rejection carries the message's
 original bytes; only a vector assembled from many samples, which has no single message, is
-written as the vector message it became.
+written as the vector message it became.  A vector taken with invalid entries (treated as
+missing) is counted per entry by reason (:attr:`Pipeline.invalid_values`) and its message goes
+to the reject sinks once as a ``kept`` record (reason "invalid_values"), which is no rejection.
 """
 
 from __future__ import annotations
@@ -21,8 +23,10 @@ from .decode import DecodeError, Vector, decode_vector, encode_vector
 from .engine import Engine
 from .lines import Rejected
 from .otlp import decode_otlp
+from .reorder import refusal_detail
 from .samples import SampleAssembler, decode_sample, encode_sample
 from .sources import Message
+from .values import describe_invalid
 
 #: Receives every rejection with the partition it came from ("" for files and stdin).
 RejectSink = Callable[[Rejected, str], None]
@@ -90,6 +94,7 @@ class Pipeline:
         self.admitted = admitted
         self.decoder = MessageDecoder(config, self._reject_parts)
         self.rejected_by_reason: Counter[str] = Counter()
+        self.invalid_values: Counter[str] = Counter()   # entries of taken vectors treated as missing, by reason
 
     @property
     def rejected(self) -> int:
@@ -122,8 +127,12 @@ class Pipeline:
             refused = engine.feed(vector)
             if refused is not None:
                 self._reject_parts(position, raw if raw is not None else encode_vector(vector), refused,
-                                   f"vector of {vector.entity!r} at ts {vector.ts} refused: {refused}", partition)
-            elif self.admitted is not None:
+                                   refusal_detail(vector.entity, vector.ts, refused,
+                                                  engine.last_accepted_ts(vector.entity)), partition)
+                continue
+            if vector.invalid:
+                self._kept(vector, position, partition, raw)
+            if self.admitted is not None:
                 self.admitted(vector, position, partition)
 
     def close_steps(self) -> None:
@@ -132,6 +141,15 @@ class Pipeline:
 
     def reject(self, record: Rejected, partition: str = "") -> None:
         self.rejected_by_reason[record.reason] += 1
+        for sink in self.reject_sinks:
+            sink(record, partition)
+
+    def _kept(self, vector: Vector, position: int, partition: str, raw: bytes | None) -> None:
+        """A vector taken with invalid entries: count them, and dead-letter its message as kept."""
+        self.invalid_values.update(reason for _, reason in vector.invalid)
+        record = Rejected(line=position, reason="invalid_values",
+                          detail=describe_invalid(vector.invalid, vector.shown),
+                          raw=raw if raw is not None else encode_vector(vector), kept=True)
         for sink in self.reject_sinks:
             sink(record, partition)
 

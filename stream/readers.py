@@ -281,8 +281,10 @@ class DeadLetterWriter:
     """Writes rejected lines as JSON lines, one object each, to replay or inspect later.
 
     {"line": N, "reason": slug, "detail": sentence, "raw": text, "raw_encoding": "utf-8" | "base64",
-     "truncated": bool, "source": input path}. `raw` is the original line as text when it is valid
-    UTF-8, else base64 of its bytes (see raw_encoding); with truncated false it is the whole line.
+     "truncated": bool, "kept": bool, "source": input path}. `raw` is the original line as text when it
+    is valid UTF-8, else base64 of its bytes (see raw_encoding); with truncated false it is the whole line.
+    `kept` is true for a line whose vector was used with invalid values treated as missing (reason
+    "invalid_values", the detail names each entry); false for a line that gave nothing.
     `source` is given once here or per write (which wins); null if neither.
     The file is created (truncated) on open; OSError if it cannot be.
     """
@@ -300,7 +302,7 @@ class DeadLetterWriter:
             raw, encoding = base64.b64encode(record.raw).decode("ascii"), "base64"
         self._file.write(orjson.dumps({
             "line": record.line, "reason": record.reason, "detail": record.detail, "raw": raw,
-            "raw_encoding": encoding, "truncated": record.truncated,
+            "raw_encoding": encoding, "truncated": record.truncated, "kept": record.kept,
             # an undecodable file name (surrogate-escaped by the OS layer) must not break the JSON
             "source": None if source is None else os.fsencode(source).decode("utf-8", "backslashreplace"),
         }, option=orjson.OPT_APPEND_NEWLINE))

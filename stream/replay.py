@@ -24,7 +24,9 @@ from .engine import BatchObserver, Engine, EventSink
 from .events import EventFileWriter
 from .lines import InputError, Rejected
 from .pipeline import Pipeline
-from .readers import DeadLetterWriter, RecordStream, input_size, open_records
+from .readers import DeadLetterWriter, input_size, open_records
+from .reorder import OrderSummary, TimeOrdered
+from .values import invalid_value_notes
 
 
 @dataclass
@@ -42,9 +44,11 @@ class ReplaySummary:
     rewarmed: list[tuple[str, str]] = field(default_factory=list)   # (entity, why): models that went bad
     coverage: list[EntityCoverage] = field(default_factory=list)   # per entity: vectors, scored, warm-up
     still_open: list[OpenIncident] = field(default_factory=list)   # incidents firing when the input ended
+    invalid_values: dict[str, int] = field(default_factory=dict)   # entries treated as missing, by reason
+    order: OrderSummary = field(default_factory=lambda: OrderSummary({}))   # refused for time order, reordered
 
     @classmethod
-    def of(cls, pipeline: Pipeline, seconds: float) -> "ReplaySummary":
+    def of(cls, pipeline: Pipeline, seconds: float, window: TimeOrdered | None = None) -> "ReplaySummary":
         """What ``pipeline`` and its engine did so far (a replay at its end, ``run`` when it stops)."""
         engine = pipeline.engine
         return cls(vectors=engine.counts.processed, rejected=pipeline.rejected,
@@ -52,7 +56,8 @@ class ReplaySummary:
                    incidents=engine.counts.incidents, events=engine.counts.events,
                    solver_unconverged=engine.counts.solver_unconverged, rewarmed=list(engine.rewarmed),
                    coverage=entity_coverage(engine.registry.records()),
-                   still_open=open_incidents(engine.registry.records()), seconds=seconds)
+                   still_open=open_incidents(engine.registry.records()), seconds=seconds,
+                   invalid_values=dict(pipeline.invalid_values), order=OrderSummary.of(engine.order_refusals, window))
 
     @property
     def rate(self) -> float:
@@ -65,8 +70,10 @@ class ReplaySummary:
 
     def format(self) -> str:
         """The summary a person reads: one line of figures, then a line per thing worth knowing
-        (entities that never warmed up, incidents still open)."""
-        lines = [self._figures(), *coverage_notes(self.coverage), *open_incident_notes(self.still_open)]
+        (entities that never warmed up, incidents still open, values treated as missing, vectors
+        refused for their time)."""
+        lines = [self._figures(), *coverage_notes(self.coverage), *open_incident_notes(self.still_open),
+                 *invalid_value_notes(self.invalid_values), *self.order.notes(self.rejected_by_reason)]
         return "\n".join(lines)
 
     def print(self, stream: TextIO | None = None) -> None:
@@ -118,11 +125,13 @@ class Progress:
             self.stream.flush()
 
 
-def open_input(path: str | Path, config: Config) -> RecordStream:
-    """The records of a replay input under the configured limits and entity labels (the one way
-    replay, evaluate and tune read their input)."""
-    return open_records(path, config.decode_limits(), entity_labels=config.source.entity_labels,
-                        max_file_bytes=config.input.max_file_bytes)
+def open_input(path: str | Path, config: Config) -> TimeOrdered:
+    """The records of a replay input under the configured limits and entity labels, each entity's
+    vectors put back in time order within source.allowed_lateness_seconds (:mod:`.reorder`): the one
+    way replay, evaluate, tune and produce read their input."""
+    return TimeOrdered(open_records(path, config.decode_limits(), entity_labels=config.source.entity_labels,
+                                    max_file_bytes=config.input.max_file_bytes),
+                       config.source.allowed_lateness_seconds)
 
 
 def replay(path: str | Path, config: Config, *, events_path: str | None = None,
@@ -164,4 +173,4 @@ def replay(path: str | Path, config: Config, *, events_path: str | None = None,
     accepted = engine.counts.processed
     if accepted == 0:
         raise InputError(f"{path}: no valid vector in the input ({pipeline.rejected} lines rejected)")
-    return ReplaySummary.of(pipeline, time.perf_counter() - started)
+    return ReplaySummary.of(pipeline, time.perf_counter() - started, records)

@@ -5,10 +5,11 @@ from __future__ import annotations
 
 import numbers
 import re
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any
 
-__all__ = ["describe_invalid", "is_number", "is_utf8", "kind_of", "not_a_number_reason", "show", "show_value"]
+__all__ = ["describe_invalid", "invalid_value_notes", "is_number", "is_utf8", "kind_of", "not_a_number_reason", "show",
+           "show_value"]
 
 #: A JSON number (RFC 8259, section 6), with the JSON whitespace allowed around a value.
 _JSON_NUMBER = re.compile(r"[ \t\n\r]*-?(?:0|[1-9][0-9]*)(?:\.[0-9]+)?(?:[eE][+-]?[0-9]+)?[ \t\n\r]*")
@@ -69,3 +70,16 @@ def describe_invalid(invalid: Sequence[tuple[str, str]], shown: Sequence[str] = 
     if len(invalid) > _NAMED:
         parts.append(f"and {len(invalid) - _NAMED:,} more")
     return "; ".join(parts)
+
+
+def invalid_value_notes(counts: Mapping[str, int]) -> list[str]:
+    """Sentences for a person about the values treated as missing (``counts``: entries by reason)."""
+    total = sum(counts.values())
+    if not total:
+        return []
+    reasons = ", ".join(f"{reason} {n:,}" for reason, n in sorted(counts.items()))
+    lines = [f"warning: {total:,} value{'s' if total != 1 else ''} invalid and treated as missing ({reasons}); "
+             f"the dead letters (reason invalid_values, kept: true) name each"]
+    if counts.get("numeric_string"):
+        lines.append('  numeric_string: numbers sent as strings ("12"); the producer should send JSON numbers.')
+    return lines

@@ -7,7 +7,9 @@ The reliability contract under test:
   invariant the model relies on (finite bounded values, bounded UTF-8 names, ts in the window);
 - every rejected line or message is dead-lettered with a reason and the counts add up:
   replay ``vectors + rejected == non-blank lines``; the service
-  ``consumed == processed + dead-lettered``, with that many dead-letter records;
+  ``consumed == processed + dead-lettered``, with that many dead-letter records; and every
+  invalid value of a vector that was taken is counted by reason, its message dead-lettered once
+  as kept (not a rejection);
 - no entity or metric name can break or inject into the ``/metrics`` exposition: prometheus-client's
   own parser reads it back, every line is a shiftsieve_ comment or sample, and
   ``promtool check metrics`` (Prometheus's own parser and linter) accepts it.
@@ -59,7 +61,7 @@ FIXTURE = Path(__file__).parent / "data" / "otlp_gauge_sum.json"
 PROMTOOL = shutil.which("promtool")
 
 #: Engine.feed's refusal reasons (its docstring): the vector decoded, the engine would not take it.
-ENGINE_REFUSALS = frozenset({"entity_limit", "out_of_order"})
+ENGINE_REFUSALS = frozenset({"entity_limit", "out_of_order", "duplicate_ts"})
 #: Every reason a replay or a vector-encoded service may dead-letter a line with.
 LINE_REASONS = decode.REASONS | readers.REASONS | ENGINE_REFUSALS
 
@@ -515,13 +517,28 @@ def check_replay(data: bytes, suffix: str, tmp_path: Path, header: int = 0) -> N
         assert len(records) == expected
     else:
         assert summary.vectors + summary.rejected == expected
-        records = dead_letters(dead)
+        records, kept = split_kept(dead_letters(dead))
         assert len(records) == summary.rejected
         assert collections.Counter(r["reason"] for r in records) == summary.rejected_by_reason
+        check_kept(kept, summary.invalid_values)
         for line in events.read_bytes().splitlines():
             orjson.loads(line)
     for r in records:
         assert r["reason"] in LINE_REASONS and r["detail"] and r["raw_encoding"] in ("utf-8", "base64")
+
+
+def split_kept(records: list[dict]) -> tuple[list[dict], list[dict]]:
+    """Dead letters of lines that gave nothing, and of lines whose vector was taken with invalid values."""
+    return [r for r in records if not r["kept"]], [r for r in records if r["kept"]]
+
+
+def check_kept(kept: list[dict], invalid_values: dict[str, float]) -> None:
+    """Each kept dead letter names its invalid entries; together they are the counted invalid values."""
+    named = collections.Counter()
+    for r in kept:
+        assert r["reason"] == "invalid_values" and r["detail"]
+        named.update(reason for reason in INVALID_VALUE_REASONS for _ in re.finditer(f": {reason}\\b", r["detail"]))
+    assert named == collections.Counter({k: int(v) for k, v in invalid_values.items() if v})
 
 
 @settings(max_examples=40, deadline=None, suppress_health_check=HEALTH)
@@ -589,6 +606,13 @@ def run_service(source: Path, dead: Path) -> Service:
     return service
 
 
+def invalid_counted(service: Service) -> dict[str, float]:
+    """shiftsieve_values_invalid_total by reason."""
+    return {sample.labels["reason"]: sample.value for family in service.exporter.registry.collect()
+            if family.name == "shiftsieve_values_invalid" for sample in family.samples
+            if sample.name.endswith("_total")}
+
+
 def dead_lettered(service: Service) -> dict[str, float]:
     out = {}
     for family in service.exporter.registry.collect():
@@ -617,10 +641,11 @@ def test_service_counts_add_up(tmp_path: Path, lines: list[bytes], ends: list[by
     assert consumed == service.engine.counts.processed + sum(by_reason.values())
     assert get("shiftsieve_messages_decoded_total") == consumed - sum(
         n for reason, n in by_reason.items() if reason not in ENGINE_REFUSALS)
-    records = dead_letters(dead)
+    records, kept = split_kept(dead_letters(dead))
     assert len(records) == sum(by_reason.values())
     assert collections.Counter(r["reason"] for r in records) == by_reason
     assert all(r["reason"] in LINE_REASONS and r["detail"] for r in records)
+    check_kept(kept, invalid_counted(service))
     check_exposition(service.exporter.exposition(), set(service.engine.entities))
 
 

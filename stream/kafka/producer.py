@@ -99,9 +99,12 @@ class KafkaSink:
         key = str(entity).encode("utf-8") if entity is not None and entity != "" else None
         return self._send(topic, value, key, None)
 
-    def send_dead_letter(self, topic: str, raw: bytes, reason: str, source: str) -> bool:
-        """Queue one dead letter: the original bytes, headers ``reason`` and ``source`` (UTF-8)."""
+    def send_dead_letter(self, topic: str, raw: bytes, reason: str, source: str, kept: bool = False) -> bool:
+        """Queue one dead letter: the original bytes, headers ``reason`` and ``source`` (UTF-8), and
+        ``kept: true`` when the message's vector was used with invalid values treated as missing."""
         headers = [("reason", str(reason).encode("utf-8")), ("source", str(source).encode("utf-8"))]
+        if kept:
+            headers.append(("kept", b"true"))
         return self._send(topic, bytes(raw), None, headers)
 
     def flush(self, timeout_s: float = 10) -> bool:
