@@ -193,7 +193,8 @@ class SourceSection:
                                        "otlp_json)")
     allowed_lateness_seconds: float = setting(60.0, Range(0, 86400), noun=_SECONDS,
                                               help="how long a step stays open for late samples before its vector "
-                                                   "is emitted")
+                                                   "is emitted; in replay inputs, how far behind its entity's "
+                                                   "newest a vector may arrive and still be put back in order")
     poll_seconds: float = setting(0.5, Range(0, 60, lo_open=True), noun=_SECONDS,
                                   help="longest wait for input in one poll of the source (also bounds how long "
                                        "SIGTERM takes)")

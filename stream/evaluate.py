@@ -47,6 +47,7 @@ from .events import events_from_transitions
 from .labels import EvaluationError, Labels
 from .lines import InputError, Rejected
 from .pipeline import Pipeline
+from .reorder import taken_in_order
 from .replay import open_input
 from .scoring import Evaluation, score_events
 
@@ -114,7 +115,8 @@ def parse_methods(text: str) -> list[str]:
 
 
 def load_vectors(path: str | Path, config: Config) -> list[Vector]:
-    """The input's valid vectors in file order (undecodable lines are skipped, as replay does)."""
+    """The input's valid vectors as replay feeds them (file order, each entity's disorder within
+    source.allowed_lateness_seconds put back; undecodable lines are skipped)."""
     with open_input(path, config) as records:
         vectors = [r for r in records if not isinstance(r, Rejected)]
     if not vectors:
@@ -123,12 +125,10 @@ def load_vectors(path: str | Path, config: Config) -> list[Vector]:
 
 
 def _in_order(vectors: list[Vector]) -> dict[str, list[Vector]]:
-    """Per entity, its vectors with increasing ts (later-or-equal ts are refused, as the engine does)."""
+    """Per entity, the vectors the engine takes (:func:`.reorder.taken_in_order`), in order."""
     by_entity: dict[str, list[Vector]] = {}
-    for v in vectors:
-        own = by_entity.setdefault(v.entity, [])
-        if not own or v.ts > own[-1].ts:
-            own.append(v)
+    for v in taken_in_order(vectors):
+        by_entity.setdefault(v.entity, []).append(v)
     return by_entity
 
 

@@ -28,7 +28,7 @@ from __future__ import annotations
 import heapq
 import math
 from collections import deque
-from collections.abc import Iterator, Mapping
+from collections.abc import Iterable, Iterator, Mapping
 from dataclasses import dataclass, replace
 
 from .decode import Vector
@@ -36,7 +36,8 @@ from .lines import Rejected
 from .readers import RecordStream
 from .timefmt import rfc3339
 
-__all__ = ["ORDER_REASONS", "OrderRefusal", "OrderSummary", "TimeOrdered", "order_refusal", "refusal_detail"]
+__all__ = ["ORDER_REASONS", "OrderRefusal", "OrderSummary", "TimeOrdered", "order_refusal", "refusal_detail",
+           "taken_in_order"]
 
 #: Reasons the engine refuses a vector for its time.
 ORDER_REASONS = ("out_of_order", "duplicate_ts")
@@ -47,6 +48,16 @@ def order_refusal(ts: float, last: float) -> str | None:
     if ts > last:
         return None
     return "duplicate_ts" if ts == last else "out_of_order"
+
+
+def taken_in_order(vectors: Iterable[Vector]) -> Iterator[Vector]:
+    """The vectors an engine fed ``vectors`` would take by :func:`order_refusal` (for the commands
+    that read a file without one: evaluate's baselines, tune's scan)."""
+    last: dict[str, float] = {}
+    for vector in vectors:
+        if order_refusal(vector.ts, last.get(vector.entity, -math.inf)) is None:
+            last[vector.entity] = vector.ts
+            yield vector
 
 
 def refusal_detail(entity: str, ts: float, reason: str, last: float) -> str:
@@ -158,6 +169,11 @@ class TimeOrdered(Iterator[Vector | Rejected]):
     def bytes_read(self) -> int:
         """Progress: bytes of the file consumed so far (see :attr:`.readers.RecordStream.bytes_read`)."""
         return self.records.bytes_read
+
+    @property
+    def held(self) -> int:
+        """Vectors held now: per entity, at most those within the window of its newest."""
+        return sum(map(len, self._held.values()))
 
     def __iter__(self) -> TimeOrdered:
         return self

@@ -40,6 +40,7 @@ from .decode import DecodeError, parse_timestamp
 from .labels import DEFAULT_TOLERANCE_SECONDS, Labels
 from .scoring import Evaluation, format_table, predicted_incidents, score_events
 from .lines import InputError, Rejected
+from .reorder import taken_in_order
 from .replay import open_input, replay
 from .timefmt import rfc3339
 
@@ -118,16 +119,12 @@ def with_settings(config: Config, false_alarm: float, confirm_k: int, confirm_m:
 
 
 def _scan(path: Path, config: Config) -> _Span:
-    """Timestamps the engine accepts (per entity strictly increasing) and each entity's first scored ts."""
+    """Timestamps the engine accepts (:func:`.reorder.taken_in_order`) and each entity's first scored ts."""
     warmup = config.model.warmup
     stamps: list[float] = []
-    last: dict[str, float] = {}
     seen: dict[str, int] = {}
     scored_from: dict[str, float] = {}
-    for record in open_input(path, config):
-        if isinstance(record, Rejected) or record.ts <= last.get(record.entity, -math.inf):
-            continue
-        last[record.entity] = record.ts
+    for record in taken_in_order(r for r in open_input(path, config) if not isinstance(r, Rejected)):
         stamps.append(record.ts)
         count = seen[record.entity] = seen.get(record.entity, 0) + 1
         if count == warmup + 1:

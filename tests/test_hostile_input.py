@@ -649,6 +649,27 @@ def test_service_counts_add_up(tmp_path: Path, lines: list[bytes], ends: list[by
     check_exposition(service.exporter.exposition(), set(service.engine.entities))
 
 
+def test_service_counts_invalid_values_by_reason_in_metrics(tmp_path: Path) -> None:
+    """`run` on a file: each invalid value of a vector it takes is in shiftsieve_values_invalid_total{reason},
+    the message dead-lettered once as kept and not counted as dead-lettered (it was processed)."""
+    lines = [json.dumps({"ts": TS + 30 * k, "entity": "e1", "metrics": {"m1": 1.0, "m2": 2.0}}).encode()
+             for k in range(3)]
+    lines[1] = b'{"ts": 1780000030, "entity": "e1", "metrics": {"m1": "12", "m2": "n/a"}}'
+    lines.append(b'{"ts": 1780000090, "entity": "e1", "metrics": {"m1": NaN, "m2": "0.5"}}')   # stdlib JSON reads NaN
+    source, dead = tmp_path / "in.jsonl", tmp_path / "dead.jsonl"
+    source.write_bytes(b"\n".join(lines) + b"\n")
+    service = run_service(source, dead)
+    assert invalid_counted(service) == {"numeric_string": 2.0, "not_a_number": 1.0, "non_finite": 1.0}
+    assert dead_lettered(service) == {} and service.engine.counts.processed == 4
+    records, kept = split_kept(dead_letters(dead))
+    assert records == [] and [(r["line"], r["detail"]) for r in kept] == [
+        (2, "m1: numeric_string ('12'); m2: not_a_number ('n/a')"),
+        (4, "m1: non_finite (nan); m2: numeric_string ('0.5')")]
+    text = service.exporter.exposition()
+    assert b'shiftsieve_values_invalid_total{reason="numeric_string"} 2.0' in text
+    check_exposition(text, set(service.engine.entities))
+
+
 # --- 5. hostile names in /metrics ---------------------------------------------------------------------------
 
 def exported_label(text: str) -> str:

@@ -392,3 +392,16 @@ def test_dead_letter_file_is_created_even_when_empty(tmp_path: Path) -> None:
     with DeadLetterWriter(tmp_path / "none.jsonl", source="in.jsonl") as dead:
         pass
     assert dead.count == 0 and (tmp_path / "none.jsonl").read_bytes() == b""
+
+
+def test_dead_letter_says_whether_the_vector_was_kept(tmp_path: Path) -> None:
+    """A line whose vector was used with invalid values treated as missing is a dead letter too, marked kept."""
+    line = b'{"ts": 1780000000, "entity": "a", "metrics": {"cpu_util": "n/a", "lat_ms": "12"}}'
+    with DeadLetterWriter(tmp_path / "dead.jsonl") as dead:
+        dead.write(Rejected(1, "bad_json", "not valid JSON", b"{"))
+        dead.write(Rejected(2, "invalid_values", "cpu_util: not_a_number ('n/a'); lat_ms: numeric_string ('12')",
+                            line, kept=True))
+    letters = [orjson.loads(x) for x in (tmp_path / "dead.jsonl").read_bytes().splitlines()]
+    assert [(d["reason"], d["kept"]) for d in letters] == [("bad_json", False), ("invalid_values", True)]
+    assert letters[1]["raw"].encode() == line and decode_vector(line).invalid == (
+        ("cpu_util", "not_a_number"), ("lat_ms", "numeric_string"))

@@ -118,3 +118,36 @@ def test_a_refused_vector_is_dead_lettered_with_its_original_bytes(tmp_path, cap
     (letter,) = [json.loads(line) for line in dead.read_text().splitlines()]
     assert letter["reason"] == "out_of_order" and letter["line"] == 21
     assert letter["raw"] == late and letter["raw_encoding"] == "utf-8"
+
+
+def test_invalid_values_are_counted_in_the_summary_and_dead_lettered_as_kept(tmp_path, capsys):
+    """A vector with bad entries is kept with them missing (not a rejection: vectors + rejected is still
+    every non-blank line), its entries counted by reason, and its line dead-lettered once, naming each
+    entry with its reason and value. "12" is a string, not a number (RFC 8259, sections 6 and 7)."""
+    rows = _rows(30)
+    bad = ('{"ts": 1780000900.5, "entity": "ferry-gate-1", "metrics": {"req_per_s": "12", "cpu_ratio": "n/a", '
+           '"queue_len": 3, "lat_ms": "12ms"}}')
+    src, dead = tmp_path / "in.jsonl", tmp_path / "dead.jsonl"
+    _write_jsonl(src, rows, extra_lines=[bad, "{not json"])
+    assert main(["replay", str(src), "--events", str(tmp_path / "ev.jsonl"), "--dead-letter", str(dead)]) == 0
+    err = capsys.readouterr().err
+    assert "31 vectors" in err and "1 lines rejected (bad_json 1)" in err
+    assert "3 values invalid and treated as missing (not_a_number 2, numeric_string 1)" in err
+    assert "the producer should send JSON numbers" in err
+    # The rejection is written at once, the kept line when its vector is released by the reordering window.
+    kept, rejected = sorted((json.loads(line) for line in dead.read_text().splitlines()), key=lambda d: d["line"])
+    assert (kept["line"], kept["reason"], kept["kept"], kept["raw"]) == (31, "invalid_values", True, bad)
+    assert kept["detail"] == ("req_per_s: numeric_string ('12'); cpu_ratio: not_a_number ('n/a'); "
+                              "lat_ms: not_a_number ('12ms')")
+    assert (rejected["line"], rejected["reason"], rejected["kept"]) == (32, "bad_json", False)
+
+
+def test_a_csv_cell_that_is_not_a_number_is_counted(tmp_path, capsys):
+    src = tmp_path / "in.csv"
+    src.write_text("ts,entity,cpu,lat_ms\n1780000000,e1,0.5,oops\n1780000030,e1,NaN,12\n")
+    dead = tmp_path / "dead.jsonl"
+    assert main(["replay", str(src), "--events", str(tmp_path / "ev.jsonl"), "--dead-letter", str(dead)]) == 0
+    assert "2 values invalid and treated as missing (non_finite 1, not_a_number 1)" in capsys.readouterr().err
+    letters = [json.loads(line) for line in dead.read_text().splitlines()]
+    assert [(d["line"], d["detail"], d["kept"]) for d in letters] == [
+        (2, "lat_ms: not_a_number ('oops')", True), (3, "cpu: non_finite (nan)", True)]
