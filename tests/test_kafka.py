@@ -240,6 +240,18 @@ def test_send_dead_letter_headers_and_raw_bytes(kafka_broker, kafka_topic):
     assert dict(msg.headers) == {"reason": b"invalid_json", "source": b"vectors[2]@41"}
 
 
+def test_a_kept_dead_letter_says_so_in_a_header(kafka_broker, kafka_topic):
+    """The message of a vector used with invalid values treated as missing: dead-lettered, marked kept."""
+    topic = kafka_topic(partitions=1)
+    raw = b'{"ts": 1780000000, "entity": "a", "metrics": {"x": "12"}}'
+    with KafkaSink(settings(kafka_broker, topic)) as sink:
+        assert sink.send_dead_letter(topic, raw, reason="invalid_values", source="vectors[0]@7", kept=True) is True
+        assert sink.flush(10) is True
+    [msg] = read_all(kafka_broker, topic, 1)
+    assert msg.value == raw
+    assert dict(msg.headers) == {"reason": b"invalid_values", "source": b"vectors[0]@7", "kept": b"true"}
+
+
 def test_send_event_json_keyed_by_entity(kafka_broker, kafka_topic):
     topic = kafka_topic(partitions=1)
     events = [
