@@ -2,8 +2,11 @@
 
 import doctest
 import html
+import io
 import json
+import re
 import struct
+from contextlib import redirect_stderr
 from html.parser import HTMLParser
 from pathlib import Path
 
@@ -13,13 +16,19 @@ import pytest
 from scipy.stats import norm
 
 from shiftsieve.stream import report
+from shiftsieve.stream.alert_lines import si
 from shiftsieve.stream.cli import EXIT_USAGE, main
 from shiftsieve.stream.config import load_config
+from shiftsieve.stream.coverage import EntityCoverage
+from shiftsieve.stream.evaluate import METHODS
 from shiftsieve.stream.labels import load_labels
 from shiftsieve.stream.scoring import load_events, score_events
 from shiftsieve.stream.replay import replay
-from shiftsieve.stream.report import (SHIFT, EntityTrace, ReportCollector, ReportInputs, Window, choose_metrics,
-                                      entity_view, incident_anchor, incidents_from_events, write_report)
+from shiftsieve.stream.report import (SHIFT, EntityTrace, EntityView, ReportCollector, ReportInputs, Window,
+                                      choose_metrics, entity_view, incident_anchor, incidents_from_events, write_report)
+from shiftsieve.stream.report.scored import coverage_table, coverage_warning, open_note
+from shiftsieve.stream.report.summary import IncidentSummary, mark_unclosed, unscored, unscored_spans, zoom_span
+from shiftsieve.stream.report.tables import incidents_table
 
 DATA = Path(__file__).resolve().parent.parent / "replay_data"
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"   # RFC 2083 section 3.1 (the PNG file signature)
@@ -91,18 +100,20 @@ def _peak_entries(events: list[dict], incident: str) -> dict[str, dict]:
 
 @pytest.fixture(scope="module")
 def single(tmp_path_factory):
-    """The bundled single-shift incident through the CLI with --labels and --budget, and the same
-    replay again in-process with a second, tightly bounded collector."""
+    """The bundled single-shift incident through the CLI with --labels and --budget (progress on):
+    the report's directory, the events and what went to stderr."""
     out = tmp_path_factory.mktemp("single")
     events_path = out / "events.jsonl"
-    code = main(["replay", str(DATA / "single_shift.jsonl.gz"), "--events", str(events_path), "--report",
-                 str(out / "report"), "--labels", str(DATA / "single_shift.labels.json"), "--budget", "2", "--quiet"])
+    err = io.StringIO()
+    with redirect_stderr(err):
+        code = main(["replay", str(DATA / "single_shift.jsonl.gz"), "--events", str(events_path), "--report",
+                     str(out / "report"), "--labels", str(DATA / "single_shift.labels.json"), "--budget", "2"])
     assert code == 0
-    return out / "report", load_events(events_path)
+    return out / "report", load_events(events_path), err.getvalue()
 
 
 def test_page_parses_and_every_figure_is_a_png(single):
-    directory, _ = single
+    directory, _, _ = single
     page = _parse(directory / "index.html")
     assert page.errors == [] and page.stack == []      # every element closed, in order
     assert "script" not in page.tags and "link" not in page.tags   # self-contained: no scripts, no external assets
@@ -117,25 +128,30 @@ def test_page_parses_and_every_figure_is_a_png(single):
 
 
 def test_incident_table_lists_labelled_metrics_with_the_events_values(single):
-    directory, events = single
+    directory, events, _ = single
     labels = load_labels(DATA / "single_shift.labels.json")
     page = _parse(directory / "index.html")
     (incident,) = {e["incident"] for e in events}
     table = page.tables[incident_anchor(incident)][0]
     head, rows = table[0], {row[1]: row for row in table[1:]}
-    shift, value, expected = head.index("shift (\u03c3)"), head.index("observed"), head.index("expected")
+    shift, value, expected = head.index("shift (residual \u03c3)"), head.index("observed"), head.index("expected")
+    diff = head.index("change (observed \u2212 expected)")
     for name in labels.incidents[0].metrics:
         entry = _peak_entries(events, incident)[name]
         assert float(rows[name][shift]) == round(entry["shift_sigma"], 2)
-        assert float(rows[name][value]) == entry["value"]          # exactly the events file's numbers
-        assert float(rows[name][expected]) == entry["expected"]
+        assert rows[name][value] == si(entry["value"])          # the events file's numbers, as the figures' axes
+        assert rows[name][expected] == si(entry["expected"])
+        # the change as a difference and a percentage of expected, computed here from the events
+        percent = float(re.fullmatch(r"\S+(?: \S)? \(([-+][\d.]+) %\)", rows[name][diff]).group(1))
+        assert percent == pytest.approx(100 * (entry["value"] - entry["expected"]) / abs(entry["expected"]), abs=0.051)
         assert rows[name][head.index("labelled")] == "\u2713"
 
 
 def test_page_has_scores_comparison_settings_and_the_threshold(single):
-    directory, events = single
+    directory, _, _ = single
     text = (directory / "index.html").read_text(encoding="utf-8")
-    for heading in ("Against the labels", "Method comparison", "Recommended settings", "[decision]"):
+    for heading in ("How the alerts match the labelled faults", "How other detection methods did",
+                    "Recommended settings", "[decision]"):
         assert heading in text
     # the band is expected +/- lambda d with lambda the two-sided Gaussian quantile of
     # model.false_alarm (default 1e-3): scipy.stats.norm as the reference
@@ -144,7 +160,7 @@ def test_page_has_scores_comparison_settings_and_the_threshold(single):
 
 
 def test_rerun_replaces_a_previous_report_and_refuses_user_files(single, tmp_path, capsys):
-    directory, _ = single
+    directory, _, _ = single
     assert report.prepare_directory(directory) == directory   # a previous report may be overwritten
     user = tmp_path / "notes"
     user.mkdir()

@@ -4,7 +4,7 @@
 :class:`EntityTrace` per entity; it knows nothing of how the report is drawn.
 
 Memory bound.  Each entity's record is *time-binned*: a bin covers ``width`` consecutive
-scored rows and holds, per metric, six float32 channels (the signed shift with the largest
+rows and holds, per metric, six float32 channels (the signed shift with the largest
 |shift| in the bin, the observed minimum and maximum, the mean expected value and the
 band's minimum and maximum).  When an entity reaches ``max_bins`` bins, neighbouring pairs
 merge and ``width`` doubles, so an entity never holds more than ``max_bins`` bins however
@@ -18,6 +18,11 @@ The band is the detection band: the baseline's expected value +/- ``lambda d_j``
 the detector's threshold, ``d_j`` the metric's residual scale), mapped to the metric's units.
 A value outside it alone makes the zero solution of the LASSO non-optimal for that metric,
 i.e. the detector considers it; confirmation (k of m) decides whether it alerts.
+
+Rows the detector did not score are kept too, with their observed values and NaN in the other
+channels: the warm-up (nothing scored yet), and per metric a new metric's probation, a metric
+above :attr:`EntityDetector.MAX_SCORED_LEVERAGE` (the baseline explains it by itself).  So the
+figures show what was never judged as such instead of leaving it out (:func:`.summary.unscored`).
 
 >>> import numpy as np
 >>> trace = EntityTrace(max_bins=4)
@@ -79,7 +84,8 @@ class EntityTrace:
         self._staged = np.empty((CHANNELS, 0, 0), np.float32)   # rows not yet a full bin
         self._staged_ts = np.empty(0)
         self.peak = np.zeros(0, np.float32)   # per metric, kept even when the detail is dropped
-        self.rows = 0
+        self.rows = 0                          # rows recorded, warm-up included
+        self.scored = 0                        # rows the detector scored (after the warm-up)
         self.detail = True
         self.dropped_at: float | None = None   # ts when the detail was dropped
         self.threshold = math.nan              # the detector's lambda and k-of-m rule, for the captions
@@ -102,8 +108,9 @@ class EntityTrace:
             self.peak = np.pad(self.peak, (0, len(fresh)))
         return np.array([self.index[name] for name in names], dtype=np.int64)
 
-    def add(self, names: Sequence[str], ts: np.ndarray, rows: np.ndarray) -> None:
-        """Append scored rows ``rows`` (CHANNELS, B, len(names)) with timestamps ``ts`` (B,)."""
+    def add(self, names: Sequence[str], ts: np.ndarray, rows: np.ndarray, scored: int | None = None) -> None:
+        """Append rows ``rows`` (CHANNELS, B, len(names)) with timestamps ``ts`` (B,), of which the
+        last ``scored`` (default: all) were scored."""
         cols = self.columns(names)
         if len(cols) == len(self.names) and (cols == np.arange(len(cols))).all():
             full = rows
@@ -114,6 +121,7 @@ class EntityTrace:
         if shift.size:
             self.peak = np.fmax(self.peak, np.fmax.reduce(shift, axis=0))
         self.rows += rows.shape[1]
+        self.scored += rows.shape[1] if scored is None else scored
         if not self.detail:
             return
         pending = np.concatenate([self._staged, full], axis=1)
@@ -164,6 +172,12 @@ class EntityTrace:
         self.t_first = self.t_last = self._staged_ts = np.empty(0)
         self.bins = 0
 
+    def last_ts(self) -> float:
+        """Timestamp of the last row recorded (NaN when none is, or the detail was dropped)."""
+        if self._staged_ts.size:
+            return float(self._staged_ts[-1])
+        return float(self.t_last[self.bins - 1]) if self.bins else math.nan
+
     def series(self) -> tuple[np.ndarray, np.ndarray]:
         """Bin start times (k,) and values (CHANNELS, k, n), the rows still staged as a last,
         shorter bin."""
@@ -175,30 +189,32 @@ class EntityTrace:
         return t, data
 
 
-def batch_rows(stream: "EntityModel", X: np.ndarray, result: BatchResult) -> tuple[slice, np.ndarray]:
-    """The scored rows of a batch and their channels (CHANNELS, rows, n) in metric units.
+def batch_rows(stream: "EntityModel", X: np.ndarray, result: BatchResult) -> tuple[int, np.ndarray]:
+    """How many of a batch's rows were scored (the last ones; the others built the warm-up), and
+    the channels of all its rows (CHANNELS, B, n) in metric units.
 
-    Shifts of metrics the detector does not score (not yet ``warmup`` samples, or leverage above
-    :attr:`EntityDetector.MAX_SCORED_LEVERAGE`) and of missing values are NaN, so the report
-    ranks and draws only what the detector judges.
+    Warm-up rows have only their observed values.  Shifts of metrics the detector does not score
+    (not yet ``warmup`` samples, or leverage above :attr:`EntityDetector.MAX_SCORED_LEVERAGE`) and
+    of missing values are NaN, so the report ranks only what the detector judges and can mark the rest.
     """
     det = stream.detector
     B = X.shape[0]
     u = result.units
+    rows = np.full((CHANNELS,) + X.shape, np.nan, np.float32)
+    rows[OBSERVED_LO] = rows[OBSERVED_HI] = X
     if det.warming_up or u is None:
-        return slice(B, B), np.empty((CHANNELS, 0, X.shape[1]), np.float32)
-    scored_rows = slice(B - min(B, det.samples - det.config.warmup), B)
+        return 0, rows
+    count = min(B, det.samples - det.config.warmup)
+    scored_rows = slice(B - count, B)
     Xs = X[scored_rows]
     E = result.coords[scored_rows] @ u.basis.T
     half = det.lam * u.residual_scale
     scored = det.scored_columns()[: X.shape[1]]   # the metric columns (groups come after them)
-    rows = np.empty((CHANNELS,) + Xs.shape, np.float32)
-    rows[SHIFT] = np.where(scored & np.isfinite(Xs), result.shift_sigma[scored_rows], np.nan)
-    rows[OBSERVED_LO] = rows[OBSERVED_HI] = Xs
-    rows[EXPECTED] = to_metric_units(E, u.loc, u.scale, u.log_mask)
-    rows[BAND_LO] = to_metric_units(E - half, u.loc, u.scale, u.log_mask)
-    rows[BAND_HI] = to_metric_units(E + half, u.loc, u.scale, u.log_mask)
-    return scored_rows, rows
+    rows[SHIFT, scored_rows] = np.where(scored & np.isfinite(Xs), result.shift_sigma[scored_rows], np.nan)
+    rows[EXPECTED, scored_rows] = to_metric_units(E, u.loc, u.scale, u.log_mask)
+    rows[BAND_LO, scored_rows] = to_metric_units(E - half, u.loc, u.scale, u.log_mask)
+    rows[BAND_HI, scored_rows] = to_metric_units(E + half, u.loc, u.scale, u.log_mask)
+    return count, rows
 
 
 class ReportCollector:
@@ -229,7 +245,7 @@ class ReportCollector:
         decision = stream.detector.config.decision
         trace.confirm = (decision.confirm_k, decision.confirm_m)
         before = trace.cells
-        trace.add(stream.names, ts[scored], rows)
+        trace.add(stream.names, ts, rows, scored)
         self.cells += trace.cells - before
         if self.cells > self.max_cells:
             self._shed(float(ts[-1]))

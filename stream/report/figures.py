@@ -1,6 +1,7 @@
 """The report's PNG figures (matplotlib, Agg canvas, never a display): the shift heatmap and the
-observed/expected/band traces of one entity.  matplotlib is imported inside the functions, so
-importing the report costs nothing until a figure is drawn."""
+observed/expected/band traces of one entity, their value axes written as the tables write values
+(:func:`..alert_lines.si`).  matplotlib is imported inside the functions, so importing the report
+costs nothing until a figure is drawn."""
 
 from __future__ import annotations
 
@@ -10,8 +11,9 @@ from typing import Iterable, Sequence
 
 import numpy as np
 
+from ..alert_lines import si
 from .collector import BAND_HI, BAND_LO, CHANNELS, EXPECTED, OBSERVED_HI, OBSERVED_LO, SHIFT, merge_bins
-from .summary import EntityView
+from .summary import EntityView, unscored_spans
 
 HEATMAP_COLUMNS = 500  # display columns at most: about 1.5 pixels each at the figure's width
 NAME_CHARS = 44        # metric names longer than this are cut with an ellipsis in figures
@@ -23,6 +25,9 @@ INCIDENT_COLOUR = "#D55E00"
 LABEL_COLOUR = "#009E73"
 BAND_COLOUR = "#999999"
 SURGE_COLOUR = "#56B4E9"
+UNSCORED_COLOUR = "#BBBBBB"   # hatched, so that it does not read as the (solid grey) detection band
+UNSCORED_HATCH = "\\\\\\"
+UNSCORED_LABEL = "not scored"
 STYLE = {"font.size": 10, "axes.titlesize": 10, "axes.labelsize": 10, "legend.fontsize": 9,
          "xtick.labelsize": 9, "ytick.labelsize": 9, "axes.spines.top": False, "axes.spines.right": False,
          "timezone": "UTC", "savefig.dpi": 100}
@@ -32,6 +37,47 @@ FIG_WIDTH = 11.0   # inches at 100 dpi: 1,100 px, the page's content width
 def short_name(name: str, limit: int = NAME_CHARS) -> str:
     """A metric name cut to ``limit`` characters with an ellipsis (figures only; tables show it whole)."""
     return name if len(name) <= limit else name[: limit - 1] + "\u2026"
+
+
+def si_ticks(values: Sequence[float]) -> tuple[list[str], str]:
+    """Tick labels of a value axis and its offset text.  Labels are :func:`..alert_lines.si`, as in
+    the tables; where its three significant digits cannot tell the ticks apart (a flat metric far
+    from zero), they are differences from the first tick, which the offset text gives in full.
+
+    >>> si_ticks([0.0, 2e6, 4e6])
+    (['0', '2 M', '4 M'], '')
+    >>> si_ticks([1003.0, 1003.005, 1003.01])
+    (['0', '+5 m', '+0.01'], '+1,003')
+    """
+    labels = [si(float(v)) for v in values]
+    if len(values) < 2 or len(set(labels)) == len(labels):
+        return labels, ""
+    step = float(np.min(np.abs(np.diff(values)))) or 1.0
+    decimals = max(0, -math.floor(math.log10(step)) + 2)
+    offset = float(values[0])
+    text = f"{offset:+,.{decimals}f}"
+    return ([si(round(float(v) - offset, decimals), sign=True) for v in values],
+            text.rstrip("0").rstrip(".") if "." in text else text)
+
+
+def _si_formatter():
+    """A matplotlib formatter around :func:`si_ticks` (built lazily: matplotlib loads on first use)."""
+    from matplotlib.ticker import Formatter
+
+    class SIFormatter(Formatter):
+        offset = ""
+
+        def format_ticks(self, values):
+            labels, self.offset = si_ticks(values)
+            return labels
+
+        def __call__(self, x, pos=None):
+            return si(float(x))
+
+        def get_offset(self):
+            return self.offset
+
+    return SIFormatter()
 
 
 def _dates(ts: np.ndarray) -> np.ndarray:
@@ -88,13 +134,14 @@ def _figure(height: float):
     return Figure(figsize=(FIG_WIDTH, height), layout="constrained")
 
 
-def _legend_handles(view: EntityView, with_lines: bool, solid: bool = False) -> list:
+def _legend_handles(view: EntityView, with_lines: bool, solid: bool = False, unscored: bool = False) -> list:
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
     handles = []
     if with_lines:
-        handles += [Line2D([], [], color=OBSERVED_COLOUR, lw=1.3, label="observed"),
-                    Line2D([], [], color=EXPECTED_COLOUR, lw=1.6, label="expected (baseline)"),
+        handles.append(Line2D([], [], color=OBSERVED_COLOUR, lw=1.3, label="observed"))
+    if with_lines and np.isfinite(view.values[EXPECTED]).any():   # nothing expected before the warm-up ends
+        handles += [Line2D([], [], color=EXPECTED_COLOUR, lw=1.6, label="expected (baseline)"),
                     Patch(facecolor=BAND_COLOUR, alpha=0.35, label="detection band")]
     if view.incidents:
         handles.append(Patch(facecolor=INCIDENT_COLOUR, alpha=0.8 if solid else 0.25, label="alerted incident"))
@@ -103,6 +150,9 @@ def _legend_handles(view: EntityView, with_lines: bool, solid: bool = False) -> 
     if view.surges:
         handles.append(Patch(facecolor=SURGE_COLOUR, alpha=0.6 if solid else 0.3,
                              label="labelled traffic surge (no fault)"))
+    if unscored:
+        handles.append(Patch(facecolor="#F2F2F2", edgecolor=UNSCORED_COLOUR, hatch=UNSCORED_HATCH,
+                             label=UNSCORED_LABEL))
     return handles
 
 
@@ -166,14 +216,31 @@ def draw_heatmap(view: EntityView, path: Path, threshold: float, emphasise: Iter
         fig.savefig(path)
 
 
+def _unscored(ax, view: EntityView, column: int) -> bool:
+    """Shade, at full height, the stretches where metric ``column`` was not scored; whether any was."""
+    from matplotlib.collections import PolyCollection
+    from matplotlib.dates import date2num
+    spans = unscored_spans(view, column)
+    if spans:
+        x = date2num(_dates(np.array(spans).ravel())).reshape(-1, 2)
+        ax.add_collection(PolyCollection([[(a, 0), (a, 1), (b, 1), (b, 0)] for a, b in x],
+                                         transform=ax.get_xaxis_transform(), facecolor="#F2F2F2",
+                                         edgecolor=UNSCORED_COLOUR, hatch=UNSCORED_HATCH, lw=0, zorder=0),
+                          autolim=False)
+    return bool(spans)
+
+
 def draw_traces(view: EntityView, path: Path, metrics: Sequence[str], span: tuple[float, float] | None = None,
                 title: str = "") -> None:
-    """One panel per metric: observed, expected, the detection band, windows shaded."""
+    """One panel per metric: observed, expected, the detection band, windows and unscored stretches
+    shaded, from the data's start to its end (or over ``span``, within the data)."""
     import matplotlib
-    from matplotlib.ticker import EngFormatter
     cols = [view.metrics.index(m) for m in metrics]
     t = _dates(view.t)
-    keep = np.ones(t.size, bool) if span is None else (view.t >= span[0]) & (view.t <= span[1])
+    span = span or (float(view.t[0]), view.end)
+    edges = np.append(view.t, view.end)
+    keep = (edges[1:] >= span[0]) & (edges[:-1] <= span[1])   # the bins that reach into the span
+    grey = False
     with matplotlib.rc_context(STYLE):
         fig = _figure(0.9 + 1.55 * len(cols))
         axes = np.atleast_1d(fig.subplots(len(cols), 1, sharex=True, squeeze=False)[:, 0])
@@ -188,20 +255,16 @@ def draw_traces(view: EntityView, path: Path, metrics: Sequence[str], span: tupl
             else:
                 ax.step(tk, v[OBSERVED_LO], where="post", color=OBSERVED_COLOUR, lw=0.9 if span is None else 1.2)
             _windows(ax, view)
+            grey |= _unscored(ax, view, c)
             ax.set_title(short_name(name, 90), loc="left", fontweight="bold")
-            ax.margins(x=0)
             if view.labelled:   # headroom for the labelled-fault bar along the top
                 lo, hi = ax.get_ylim()
                 ax.set_ylim(lo, hi + 0.12 * (hi - lo))
-            if np.nanmax(np.abs(v[[OBSERVED_HI, BAND_HI]]), initial=0.0) >= 1e4:   # 36 M, not 3.6e7
-                ax.yaxis.set_major_formatter(EngFormatter(sep=" "))
-            else:
-                ax.yaxis.get_major_formatter().set_useOffset(False)
-        if span is not None:
-            axes[-1].set_xlim(*_dates(list(span)))
+            ax.yaxis.set_major_formatter(_si_formatter())   # as the tables write values
+        axes[-1].set_xlim(*_dates(list(span)))
         axes[-1].set_xlabel("time (UTC)")
         _time_axis(axes[-1])
-        fig.legend(handles=_legend_handles(view, with_lines=True), loc="outside upper left", ncol=5,
+        fig.legend(handles=_legend_handles(view, with_lines=True, unscored=grey), loc="outside upper left", ncol=5,
                    frameon=False, title=title or None, title_fontproperties={"weight": "bold"},
                    alignment="left")
         fig.savefig(path)

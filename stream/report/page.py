@@ -1,6 +1,10 @@
 """The report's page, ``index.html``: self-contained (inline CSS, no scripts, no external assets),
 its PNG figures beside it.  Lays out, per entity shown, the figures (:mod:`.figures`) and the
-tables (:mod:`.tables`) of the summaries (:mod:`.summary`) of a :class:`.ReportCollector`."""
+tables (:mod:`.tables`) of the summaries (:mod:`.summary`) of a :class:`.ReportCollector`.
+
+In the order the person on call needs it: what was not scored (:mod:`.scored`), what moved (the
+incidents, then each entity's figures and incidents), what was scored per entity, then the scores
+against the labels, the comparison of methods and the recommended settings."""
 
 from __future__ import annotations
 
@@ -12,15 +16,19 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from ..timefmt import rfc3339
-from ..timefmt import human_duration
+from ..coverage import EntityCoverage, OpenIncident
 from ..labels import Labels
 from ..scoring import Evaluation
+from ..timefmt import human_duration, rfc3339
 from .collector import EntityTrace, ReportCollector
 from .directory import MARKER, prepare_directory
 from .figures import draw_heatmap, draw_traces, short_name
-from .summary import EntityView, IncidentSummary, choose_metrics, entity_view, incidents_from_events
-from .tables import comparison_html, evaluation_html, format_number, html_table, metric_table, window_table
+from .progress import Steps
+from .scored import coverage_table, coverage_warning, open_note
+from .summary import (EntityView, IncidentSummary, choose_metrics, entity_view, incidents_from_events, mark_unclosed,
+                      unscored, zoom_span)
+from .tables import (comparison_html, end_state, evaluation_html, format_number, incidents_table, metric_table,
+                     window_table)
 
 HEATMAP_METRICS = 12   # rows of the heatmap
 TRACE_METRICS = 6      # panels of a trace figure
@@ -34,13 +42,17 @@ h3 { margin-top: 1.6em; } .meta { color: #555; }
 .caution { background: #fff4e5; border-left: 4px solid #D55E00; padding: .6em 1em; }
 .quiet { background: #eef6f1; border-left: 4px solid #009E73; padding: .6em 1em; font-size: 1.1em; }
 .note { background: #f3f3f3; border-left: 4px solid #999; padding: .5em 1em; }
+.warning { background: #fdecea; border-left: 6px solid #B00020; padding: .6em 1em; font-size: 1.1em; }
+.warning p, .warning ul { margin: .3em 0; } b.open { color: #B00020; }
+.footnote { color: #555; font-size: .88em; }
 table { border-collapse: collapse; margin: .6em 0 1em; font-variant-numeric: tabular-nums; }
 th, td { padding: .25em .7em; border-bottom: 1px solid #e2e2e2; text-align: left; vertical-align: top; }
 th { background: #f6f6f6; } td.num { text-align: right; white-space: nowrap; }
 .name { font-family: ui-monospace, Menlo, Consolas, monospace; word-break: break-all; }
 img { max-width: 100%; height: auto; display: block; margin: .4em 0; }
 figcaption { color: #555; font-size: .92em; margin-bottom: 1.2em; }
-pre { background: #f6f6f6; padding: .8em; overflow-x: auto; }
+pre { background: #f6f6f6; padding: .8em; overflow-x: auto; max-width: 100%; box-sizing: border-box; }
+pre.settings { white-space: pre-wrap; overflow-wrap: anywhere; }
 """
 
 
@@ -57,16 +69,21 @@ class ReportInputs:
     tuning_text: str | None = None            # stream.tune.format_tuning
     tuning_toml: str | None = None            # stream.tune.toml_fragment
     missing: list[str] = field(default_factory=list)   # optional parts that could not be produced, and why
+    coverage: list[EntityCoverage] | None = None   # the replay's per-entity coverage (None: not known)
+    still_open: list[OpenIncident] | None = None   # incidents the engine held open at the end (None: not known)
 
 
-def write_report(directory: str | Path, collector: ReportCollector, inputs: ReportInputs) -> Path:
+def write_report(directory: str | Path, collector: ReportCollector, inputs: ReportInputs,
+                 steps: Steps | None = None) -> Path:
     """Write ``index.html`` and its PNG figures into ``directory`` (see :func:`prepare_directory`);
-    returns the page's path."""
+    returns the page's path.  ``steps`` shows the drawing of the figures (default: silent)."""
     out = prepare_directory(directory)
     for old in out.glob("*.png"):   # a previous report's figures (prepare_directory checked they are ours)
         old.unlink()
-    last_ts = {e: float(t.t_last[t.bins - 1]) if t.bins else -math.inf for e, t in collector.traces.items()}
-    incidents = incidents_from_events(inputs.events, last_ts)
+    last_ts = {e: t.last_ts() for e, t in collector.traces.items() if math.isfinite(t.last_ts())}
+    last_ts.update((c.entity, c.last_ts) for c in inputs.coverage or () if math.isfinite(c.last_ts))
+    incidents = mark_unclosed(incidents_from_events(inputs.events, last_ts),
+                              None if inputs.still_open is None else [o.incident for o in inputs.still_open])
     labels = inputs.labels
     by_entity: dict[str, list[IncidentSummary]] = {}
     for inc in incidents:
@@ -81,38 +98,60 @@ def write_report(directory: str | Path, collector: ReportCollector, inputs: Repo
         page.append(f'<p class="meta">{escape(inputs.summary)}</p>')
     page.append('<p class="caution">Alerts inform the people on call; they do not replace their judgement. '
                 "Do not wire them to automatic remediation without a review like this one.</p>")
-    page.append("<h2>Incidents</h2>")
+    if inputs.coverage:
+        page.append(coverage_warning(inputs.coverage))
+    page.append("<h2>What moved: the incidents</h2>")
     if incidents:
-        page.append(html_table(["incident", "entity", "onset (UTC)", "duration", "end state", "top metrics"],
-                               [[f'<a href="#{incident_anchor(i.incident)}">{escape(i.incident)}</a>',
-                                 escape(i.entity), rfc3339(i.start), human_duration(i.duration), escape(i.state),
-                                 escape(", ".join(m["name"] for m in i.metrics[:3]))] for i in incidents]))
-    else:
+        page += [incidents_table(incidents, incident_anchor), open_note(incidents, incident_anchor)]
+    elif _scored_any(collector, inputs.coverage):
         page.append('<p class="quiet"><b>Nothing fired.</b> No alert was raised on any entity during this '
                     "replay. The figures below show the metrics that moved most, for context.</p>")
-    if inputs.evaluation is not None:
-        page += ["<h2>Against the labels</h2>", evaluation_html(inputs.evaluation)]
-    if inputs.comparison:
-        page += ["<h2>Method comparison</h2>", comparison_html(inputs.comparison)]
-    if inputs.tuning_text is not None or inputs.tuning_toml is not None:
-        page.append("<h2>Recommended settings</h2>")
-        if inputs.tuning_text:
-            page.append(f"<pre>{escape(inputs.tuning_text)}</pre>")
-        if inputs.tuning_toml:
-            page.append(f"<p>Put this into the configuration file:</p><pre>{escape(inputs.tuning_toml)}</pre>")
-    for note in inputs.missing:
-        page.append(f'<p class="note">{escape(note)}</p>')
+    else:
+        page.append('<p class="warning"><b>No incident, because nothing was scored</b>: every entity was still '
+                    "warming up when the data ended. The figures below show what was observed.</p>")
     shown = list(by_entity) or sorted(
         collector.traces, key=lambda e: -float(np.nan_to_num(collector.traces[e].peak, nan=0.0).max(initial=0.0))
     )[:QUIET_ENTITIES]
-    for number, entity in enumerate(shown):
-        page += _entity_section(out, number, entity, collector.traces[entity], by_entity.get(entity, []),
-                                labelled_by_entity.get(entity, []), labels)
+    with (steps or Steps(False)).step(f"drawing the figures of {len(shown)} entities", total=len(shown)) as step:
+        for number, entity in enumerate(shown):
+            step.item(entity, vectors=sum(collector.traces[e].rows for e in shown[:number]))
+            page += _entity_section(out, number, entity, collector.traces[entity], by_entity.get(entity, []),
+                                    labelled_by_entity.get(entity, []), labels)
+    if inputs.coverage:
+        counts = {entity: len(found) for entity, found in by_entity.items()}
+        page += ["<h2>What was scored, per entity</h2>", coverage_table(inputs.coverage, counts)]
+    page += _scores_and_settings(inputs)
     page.append(_notes(collector))
     page.append("</main></body></html>\n")
     index = out / "index.html"
-    index.write_text("\n".join(page), encoding="utf-8")
+    index.write_text("\n".join(part for part in page if part), encoding="utf-8")
     return index
+
+
+def _scored_any(collector: ReportCollector, coverage: list[EntityCoverage] | None) -> bool:
+    """Whether the detector scored anything (the replay's coverage, else the collector's record)."""
+    if coverage is not None:
+        return any(c.scored for c in coverage)
+    return any(t.scored for t in collector.traces.values())
+
+
+def _scores_and_settings(inputs: ReportInputs) -> list[str]:
+    """After what moved: the scores against the labels, the comparison of methods, the recommended
+    settings, and why an optional part is missing."""
+    part = []
+    if inputs.evaluation is not None:
+        part += ["<h2>How the alerts match the labelled faults</h2>", evaluation_html(inputs.evaluation)]
+    if inputs.comparison:
+        part += ["<h2>How other detection methods did on the same data</h2>", comparison_html(inputs.comparison)]
+    if inputs.tuning_text is not None or inputs.tuning_toml is not None:
+        part.append("<h2>Recommended settings for the alert budget</h2>")
+        if inputs.tuning_text:
+            part.append(f"<pre>{escape(inputs.tuning_text)}</pre>")
+        if inputs.tuning_toml:
+            part.append(f'<p>Put this into the configuration file:</p><pre class="settings">'
+                        f"{escape(inputs.tuning_toml)}</pre>")
+    part += [f'<p class="note">{escape(note)}</p>' for note in inputs.missing]
+    return part
 
 
 def incident_anchor(text: str) -> str:
@@ -122,47 +161,49 @@ def incident_anchor(text: str) -> str:
 
 def _entity_section(out: Path, number: int, entity: str, trace: EntityTrace, incidents: list[IncidentSummary],
                     labelled: list[str], labels: Labels | None) -> list[str]:
-    """One entity's section: its figures (unless its detail was dropped or it never left warm-up),
-    then one subsection per incident."""
+    """One entity's section: how much of it was scored, its figures (unless its detail was dropped or
+    nothing of it was recorded), then one subsection per incident."""
     part = [f"<h2>{escape(entity)}</h2>"]
-    if not incidents:
+    if trace.scored:
+        part.append(f"<p>{trace.scored:,} of its {trace.rows:,} vectors scored (the first "
+                    f"{trace.rows - trace.scored:,} built its baseline).</p>")
+    else:
+        part.append(f'<p class="note"><b>None of its {trace.rows:,} vectors was scored</b>: it was still warming '
+                    "up when the data ended.</p>")
+    if not incidents and trace.scored:
         peak = float(np.nan_to_num(trace.peak).max(initial=0.0))
         part.append(f"<p>No incident on this entity; peak |shift| {format_number(peak, '.1f')} "
                     "residual \u03c3 over the replay.</p>")
     if not trace.detail or trace.rows == 0:
         why = (f"its detail was dropped at {rfc3339(trace.dropped_at)} to stay within the report's memory bound"
-               if not trace.detail else "no scored vectors (it was still warming up)")
+               if not trace.detail else "no vector of it was recorded")
         part.append(f'<p class="note">No figures for this entity: {escape(why)}.</p>')
-    else:
-        metrics = choose_metrics(trace, incidents, labelled, HEATMAP_METRICS)
-        view = entity_view(trace, entity, metrics, incidents, labels)
+        for inc in incidents:
+            part += _incident_section(inc, set(labelled), None, "")
+        return part
+    metrics = choose_metrics(trace, incidents, labelled, HEATMAP_METRICS)
+    view = entity_view(trace, entity, metrics, incidents, labels)
+    if trace.scored:   # a heatmap of nothing but grey says less than the caption
         heat = f"entity-{number:03d}-heatmap.png"
-        draw_heatmap(view, out / heat, trace.threshold,
-                     emphasise=(m["name"] for inc in incidents for m in inc.metrics))
+        draw_heatmap(view, out / heat, trace.threshold, emphasise=(m["name"] for inc in incidents for m in inc.metrics))
         marks = [w for w, present in (("bold: the incidents' metrics", bool(incidents)),
                                       ("green: labelled metrics", bool(view.labelled))) if present]
         part.append(f'<figure><img src="{heat}" alt="shift heatmap of {escape(entity)}"><figcaption>'
-                    "Signed shift of the top metrics in residual sigmas (red up, blue down; the colour scale is "
-                    f"linear up to \u00b1\u03bb = {trace.threshold:.2f} and logarithmic beyond; grey: not scored, i.e. "
-                    f"missing or a metric the baseline explains by itself{'; ' if marks else ''}"
-                    f"{'; '.join(marks)}). {_windows_caption(view)} Each column is {trace.width} scored "
-                    f"vector(s), showing the largest |shift| among them; a single vector far outside its band "
-                    f"does not alert by itself.</figcaption></figure>")
-        traces = f"entity-{number:03d}-traces.png"
-        top = metrics[:TRACE_METRICS]
-        draw_traces(view, out / traces, top)
-        part.append(f'<figure><img src="{traces}" alt="traces of {escape(entity)}"><figcaption>'
-                    f"{_band_caption(trace, view)}</figcaption></figure>")
-        for k, inc in enumerate(incidents):
-            names = _incident_metrics(inc, view)
-            context = max(inc.duration, 1800.0)
-            zoom = f"entity-{number:03d}-incident-{k:02d}.png"
-            draw_traces(view, out / zoom, names, span=(inc.start - context, inc.end + context / 2),
-                        title=f"incident {short_name(inc.incident, 60)}")
-            part += _incident_section(inc, set(labelled), zoom, _band_caption(trace, view))
-        return part
-    for inc in incidents:
-        part += _incident_section(inc, set(labelled), None, "")
+                    "Signed shift of the top metrics in residual sigmas (\u03c3; red up, blue down; the colour scale "
+                    f"is linear up to \u00b1\u03bb = {trace.threshold:.2f} \u03c3 and logarithmic beyond; grey: not "
+                    "scored, i.e. missing, the warm-up, a new metric's probation, or a metric the baseline explains "
+                    f"by itself{'; ' if marks else ''}{'; '.join(marks)}). {_windows_caption(view)} Each column is "
+                    f"{trace.width} vector(s), showing the largest |shift| among them; a single vector far outside "
+                    "its band does not alert by itself.</figcaption></figure>")
+    traces = f"entity-{number:03d}-traces.png"
+    draw_traces(view, out / traces, metrics[:TRACE_METRICS])
+    part.append(f'<figure><img src="{traces}" alt="traces of {escape(entity)}"><figcaption>'
+                f"{_band_caption(trace, view)}</figcaption></figure>")
+    for k, inc in enumerate(incidents):
+        zoom = f"entity-{number:03d}-incident-{k:02d}.png"
+        draw_traces(view, out / zoom, _incident_metrics(inc, view), span=zoom_span(inc, view),
+                    title=f"incident {short_name(inc.incident, 60)}")
+        part += _incident_section(inc, set(labelled), zoom, _band_caption(trace, view))
     return part
 
 
@@ -179,10 +220,15 @@ def _band_caption(trace: EntityTrace, view: EntityView) -> str:
     observed = ("Observed (blue; its min\u2013max range where a step holds several vectors, here "
                 f"{trace.width})" if trace.width > 1 else "Observed (blue)")
     k, m = trace.confirm
-    return (f"{observed}, the baseline's expected value (orange) and the detection band (grey): "
-            f"expected \u00b1 \u03bb = {trace.threshold:.2f} residual sigmas of the metric, mapped to its own "
-            f"units. Outside the band the detector considers a shift; it alerts after {k} of {m} such "
-            f"vectors. {_windows_caption(view)}")
+    unscored_text = ("Hatched grey over the full height: not scored (the warm-up, a new metric's probation, or "
+                     "a metric the baseline explains by itself)." if unscored(view).any() else "")
+    if not trace.scored:
+        return f"{observed} values; nothing was scored yet, so there is no expected value or band. {unscored_text}"
+    return " ".join(text for text in (
+        f"{observed}, the baseline's expected value (orange) and the detection band (grey): "
+        f"expected \u00b1 \u03bb = {trace.threshold:.2f} residual sigmas of the metric, mapped to its own "
+        f"units. Outside the band the detector considers a shift; it alerts after {k} of {m} such vectors.",
+        _windows_caption(view), unscored_text) if text)
 
 
 def _windows_caption(view: EntityView) -> str:
@@ -194,12 +240,12 @@ def _windows_caption(view: EntityView) -> str:
 
 
 def _incident_section(inc: IncidentSummary, labelled: set[str], figure: str | None, caption: str) -> list[str]:
-    state = {"open": "still firing at the end of the replay", "resolved": "resolved",
-             "adapted": "accepted as the new normal (adapted)"}.get(inc.state, inc.state)
+    unended = inc.state in ("open", "unclosed")
+    duration = f"at least <b>{human_duration(inc.duration)}</b> (to its entity's last vector)" if unended else \
+        f"duration <b>{human_duration(inc.duration)}</b>"
     part = [f'<h3 id="{incident_anchor(inc.incident)}">Incident {escape(inc.incident)}</h3>',
-            f"<p>Onset <b>{rfc3339(inc.start)}</b>, duration <b>{human_duration(inc.duration)}</b>, "
-            f"{escape(state)}. Metrics ranked by their peak |shift| over the incident's events, with the "
-            "observed and expected values at that peak:</p>",
+            f"<p>Onset <b>{rfc3339(inc.start)}</b>, {duration}, {end_state(inc.state)}. Metrics ranked by their "
+            "peak |shift| over the incident's events, with the observed and expected values at that peak:</p>",
             metric_table(inc, labelled)]
     if figure:
         part.append(f'<figure><img src="{figure}" alt="traces around incident {escape(inc.incident)}">'

@@ -4,13 +4,17 @@ figures).  No drawing and no HTML here."""
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+import math
+from dataclasses import dataclass, field, replace
 from typing import Iterable, Sequence
 
 import numpy as np
 
 from ..labels import Labels
-from .collector import EntityTrace
+from .collector import OBSERVED_LO, SHIFT, EntityTrace
+
+#: Seconds of context a zoomed incident shows before its onset at least (half of it after its end).
+ZOOM_CONTEXT = 1800.0
 
 
 @dataclass(frozen=True)
@@ -30,7 +34,7 @@ class IncidentSummary:
     entity: str
     start: float
     end: float
-    state: str                      # resolved, adapted, or open (still firing at the end of the replay)
+    state: str                      # resolved, adapted, open (firing when the data ended) or unclosed
     metrics: tuple[dict, ...]       # event entries (name, shift_sigma, value, expected), peak |shift|, ranked
     window_metrics: dict | None     # joint-window rankings of the closing event, when present
 
@@ -64,6 +68,15 @@ def incidents_from_events(events: Iterable[dict], last_ts: dict[str, float]) -> 
     return sorted(found, key=lambda i: (i.start, i.incident))
 
 
+def mark_unclosed(incidents: list[IncidentSummary], still_open: Iterable[str] | None) -> list[IncidentSummary]:
+    """Incidents without a closing event that the engine no longer held open at the end (``still_open``:
+    the ids it did; None: unknown) become ``unclosed``: their entity's model was reset or dropped."""
+    if still_open is None:
+        return incidents
+    held = set(still_open)
+    return [replace(i, state="unclosed") if i.state == "open" and i.incident not in held else i for i in incidents]
+
+
 @dataclass
 class EntityView:
     """The data one entity's figures draw: chosen metrics, binned series, windows."""
@@ -76,8 +89,40 @@ class EntityView:
     incidents: list[Window]
     labelled: list[Window]
     labelled_metrics: list[tuple[str, ...]]   # the metrics of each labelled window
-    width: int                     # scored rows per bin
+    width: int                     # rows per bin
     surges: list[Window] = field(default_factory=list)   # labelled benign traffic surges (every entity)
+    t_end: float = math.nan        # the entity's last timestamp: where its data ends
+
+    @property
+    def end(self) -> float:
+        """Where the data ends: ``t_end``, or one step after the last bin when it is unknown."""
+        return self.t_end if math.isfinite(self.t_end) else float(self.t[-1]) + self.step
+
+
+def unscored(view: EntityView) -> np.ndarray:
+    """(k, metrics) bools: bins where a metric has an observed value but no shift, i.e. the detector
+    did not score it there (warm-up, a new metric's probation, or a metric its baseline explains by
+    itself).  Missing values are not marked: there is nothing to draw."""
+    return np.isnan(view.values[SHIFT]) & ~np.isnan(view.values[OBSERVED_LO])
+
+
+def unscored_spans(view: EntityView, column: int) -> list[tuple[float, float]]:
+    """The stretches (start, end) in epoch seconds where metric ``column`` of ``view`` was not
+    scored (:func:`unscored`); a bin spans from its start to the next one's (the last to ``end``)."""
+    edges = np.append(view.t, view.end)
+    padded = np.concatenate([[False], unscored(view)[:, column], [False]])
+    flips = np.flatnonzero(padded[1:] != padded[:-1])
+    return [(float(edges[a]), float(edges[b])) for a, b in zip(flips[::2], flips[1::2])]
+
+
+def zoom_span(inc: IncidentSummary, view: EntityView) -> tuple[float, float]:
+    """The time range of an incident's zoomed traces: :data:`ZOOM_CONTEXT` (or its duration, if
+    longer) before the onset and half that after its end, never beyond the entity's data."""
+    context = max(inc.duration, ZOOM_CONTEXT)
+    first = float(view.t[0]) if view.t.size else inc.start
+    lo = max(inc.start - context, first)
+    hi = min(inc.end + context / 2, view.end)
+    return (lo, hi) if hi > lo else (lo, lo + view.step)
 
 
 def choose_metrics(trace: EntityTrace, incidents: Sequence[IncidentSummary], labelled: Iterable[str],
@@ -106,4 +151,5 @@ def entity_view(trace: EntityTrace, entity: str, metrics: list[str], incidents: 
                       [Window(i.start, i.end, i.incident) for i in incidents],
                       [Window(lab.start, lab.end, ", ".join(lab.metrics)) for lab in mine],
                       [lab.metrics for lab in mine], trace.width,
-                      [Window(start, end, "traffic surge") for start, end in (labels.surges if labels else ())])
+                      [Window(start, end, "traffic surge") for start, end in (labels.surges if labels else ())],
+                      trace.last_ts())
