@@ -1,6 +1,7 @@
 """The incident-review report (`replay --report DIR`): page structure, figures, values, bounds."""
 
 import doctest
+import gzip
 import html
 import io
 import json
@@ -159,6 +160,125 @@ def test_page_has_scores_comparison_settings_and_the_threshold(single):
     assert "do not replace their judgement" in text
 
 
+def test_incidents_and_figures_come_before_the_comparison_and_tuning(single):
+    directory, _, _ = single
+    text = (directory / "index.html").read_text(encoding="utf-8")
+    order = [text.index(mark) for mark in ("What moved: the incidents", '<h3 id="i-', "-incident-00.png",
+                                           "How the alerts match the labelled faults",
+                                           "How other detection methods did", "Recommended settings")]
+    assert order == sorted(order)
+
+
+def test_settings_block_wraps_inside_its_box(single):
+    directory, _, _ = single
+    text = (directory / "index.html").read_text(encoding="utf-8")
+    block = re.search(r'<pre class="settings">(.*?)</pre>', text, re.S)
+    assert block and "[decision]" in block.group(1)
+    rule = re.search(r"pre\.settings\s*\{([^}]*)\}", text).group(1)   # the page's own CSS
+    assert "white-space: pre-wrap" in rule and "overflow-wrap: anywhere" in rule
+
+
+def test_headings_are_plain_words_the_methods_in_footnotes_and_scores_have_units(single):
+    directory, _, _ = single
+    text = (directory / "index.html").read_text(encoding="utf-8")
+    headings = [html.unescape(h) for _, h in re.findall(r"<(h[1-4]|th)[^>]*>(.*?)</\1>", text, re.S)]
+    assert "Metrics that moved together over the incident" in headings
+    assert not [h for h in headings if re.search(r"lasso|m-?sbl|mmv", h, re.I)]
+    footnotes = " ".join(re.findall(r'<p class="footnote">(.*?)</p>', text, re.S))
+    assert "group LASSO" in footnotes and "M-SBL" in footnotes
+    assert "RMS shift (residual \u03c3)" in headings and "shift (residual \u03c3)" in headings
+    page = _parse(directory / "index.html")
+    scores = next(t for ts in page.tables.values() for t in ts if t[0][:3] == ["method", "names metrics", "precision"])
+    for row in scores[1:]:
+        assert all(row[i].endswith("%") for i in (2, 3, 4))                  # precision, recall, F1
+        assert row[6].endswith(" s") or row[6] == "\u2013"                    # mean delay (none without a match)
+        assert row[7].endswith("per entity-day") and row[8].endswith(" s")
+
+
+def test_progress_says_what_the_steps_after_the_replay_do(single):
+    _, _, err = single
+    lines = err.splitlines()
+    start = lines.index("shiftsieve: comparing 6 detection methods on the 6,000 vectors ...")
+    assert lines[start + 1: start + 1 + len(METHODS)] == [
+        f"shiftsieve:   {name} ({i} of {len(METHODS)})" for i, name in enumerate(METHODS, 1)]
+    assert lines[start + 1 + len(METHODS)].startswith("shiftsieve: comparing 6 detection methods on the 6,000 "
+                                                      "vectors: done in ")
+    steps = [i for i, line in enumerate(lines) if line.startswith(("shiftsieve: looking for settings",
+                                                                    "shiftsieve: drawing the figures"))]
+    summary = next(i for i, line in enumerate(lines) if line.startswith("shiftsieve: 6,000 vectors"))
+    assert len(steps) == 4 and start < min(steps) and max(steps) < summary   # each step starts and ends
+
+
+def test_a_replay_shorter_than_the_warmup_says_nothing_was_scored(tmp_path):
+    short = tmp_path / "short.jsonl"
+    with gzip.open(DATA / "single_shift.jsonl.gz", "rt") as f:   # one entity, 100 of the 540 warm-up vectors
+        lines = [line for line in f if '"booking-api-1"' in line][:100]
+    short.write_text("".join(lines))
+    code = main(["replay", str(short), "--events", str(tmp_path / "e.jsonl"), "--report", str(tmp_path / "r"),
+                 "--quiet"])
+    assert code == 0
+    text = (tmp_path / "r" / "index.html").read_text(encoding="utf-8")
+    assert "Nothing fired." not in text and "Nothing was scored." in text and "not an all-clear" in text
+    assert "booking-api-1</b>: 100 of the 540 vectors" in text and "440 more vectors" in text
+    scored = next(t for t in _parse(tmp_path / "r" / "index.html").tables[""] if t[0][:3] == ["entity", "vectors",
+                                                                                               "scored"])
+    assert scored[1][:4] == ["booking-api-1", "100", "0", "0\u00a0%"]
+
+
+def test_entities_that_never_warmed_up_are_named_beside_those_that_did():
+    warm = EntityCoverage("warm-1", 900, 540, 0.0, 899 * 30.0)
+    cold = EntityCoverage("cold-1", 60, 540, 0.0, 59 * 30.0)
+    box = coverage_warning([warm, cold])
+    assert "1 of 2 entities never warmed up" in box and "cold-1" in box and "warm-1" not in box
+    assert cold.still_needed() in box
+    assert coverage_warning([warm]) == ""
+    table = coverage_table([warm, cold], {"warm-1": 2})
+    assert table.index("cold-1") < table.index("warm-1") and "360" in table   # scored: 900 - 540
+
+
+def test_incidents_without_an_end_are_marked():
+    events = [{"ts": 100.0, "entity": "a", "state": "firing", "incident": "a/100",
+               "metrics": [{"name": "m", "shift_sigma": 6.0, "value": 2.0, "expected": 1.0}]},
+              {"ts": 200.0, "entity": "b", "state": "firing", "incident": "b/200", "metrics": []},
+              {"ts": 300.0, "entity": "b", "state": "resolved", "incident": "b/200", "metrics": []}]
+    incidents = incidents_from_events(events, {"a": 400.0})
+    assert [(i.incident, i.state, i.end) for i in incidents] == [("a/100", "open", 400.0),
+                                                                 ("b/200", "resolved", 300.0)]
+    table = incidents_table(incidents, incident_anchor)
+    assert "still open at the end of the data" in table and "6 min 40 s+" not in table and "5 min 00 s+" in table
+    assert "a/100" in open_note(incidents, incident_anchor) and open_note(incidents[1:], incident_anchor) == ""
+    # an incident the engine no longer held open at the end was never closed (its model was reset)
+    (reset, _) = mark_unclosed(incidents, still_open=[])
+    assert reset.state == "unclosed" and "never closed" in incidents_table([reset], incident_anchor)
+
+
+def _view(t: np.ndarray, t_end: float) -> EntityView:
+    values = np.full((report.CHANNELS, t.size, 1), np.nan, np.float32)
+    return EntityView("e", ["m"], t, 30.0, values, [], [], [], 1, t_end=t_end)
+
+
+def test_the_incident_zoom_stops_at_the_end_of_the_data():
+    t = 1780000000.0 + 30.0 * np.arange(200)
+    view = _view(t, float(t[-1]))
+    late = IncidentSummary("e/x", "e", float(t[190]), float(t[-1]), "open", (), None)
+    lo, hi = zoom_span(late, view)
+    assert hi == t[-1] and lo == t[190] - 1800.0
+    early = IncidentSummary("e/y", "e", float(t[10]), float(t[20]), "resolved", (), None)
+    assert zoom_span(early, view) == (t[0], t[20] + 900.0)   # nor before its start
+
+
+def test_unscored_stretches_are_in_the_figure_data(surge_and_bounded):
+    free, _, _, _, summary = surge_and_bounded
+    entity = next(iter(free.traces))
+    trace = free.traces[entity]
+    warmup = load_config(None).model.warmup
+    assert trace.width == 1 and trace.rows - trace.scored == warmup   # the warm-up's observed values are kept
+    view = entity_view(trace, entity, trace.names[:3], [], None)
+    assert unscored(view)[:warmup].all() and not unscored(view)[warmup:].all()
+    assert unscored_spans(view, 0)[0] == (view.t[0], view.t[warmup])
+    assert np.isfinite(view.values[report.OBSERVED_LO, :warmup]).any()
+
+
 def test_rerun_replaces_a_previous_report_and_refuses_user_files(single, tmp_path, capsys):
     directory, _, _ = single
     assert report.prepare_directory(directory) == directory   # a previous report may be overwritten
@@ -297,6 +417,8 @@ def test_short_names_keep_figures_readable():
     assert report.short_name("cpu") == "cpu"
 
 
-def test_docstring_examples():
-    result = doctest.testmod(report.collector, optionflags=doctest.NORMALIZE_WHITESPACE)
+@pytest.mark.parametrize("module", [report.collector, report.figures, report.progress])
+def test_docstring_examples(module):
+    # figures: the value axes' labels are alert_lines.si, as the tables'; progress: the plain lines
+    result = doctest.testmod(module, optionflags=doctest.NORMALIZE_WHITESPACE)
     assert result.attempted > 0 and result.failed == 0

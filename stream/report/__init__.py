@@ -12,7 +12,9 @@ Modules, each using only those above it:
 - :mod:`.summary`: incidents from the events, the windows and the data of each entity's figures;
 - :mod:`.figures`: the heatmap and trace figures;
 - :mod:`.tables`: the HTML tables;
+- :mod:`.scored`: what was scored (the warning when nothing or not everything was), incidents without an end;
 - :mod:`.directory`: where a report may be written, and :class:`ReportError`;
+- :mod:`.progress`: what the steps after the replay are doing, on stderr;
 - :mod:`.page`: ``index.html`` from all of the above;
 - :mod:`.build`: the replay, the optional scores, comparison and tuning, then the page.
 """
