@@ -13,10 +13,10 @@ within ``source.allowed_lateness_seconds``, the setting that already bounds late
 (:mod:`.samples`).  A vector at most that far behind its entity's newest is held, and released in
 time order once the entity's newest has moved further than that past it; one further behind
 passes on at once, and the engine takes it if it is still later than what it took, else refuses
-it.  So a file in order within the window loses nothing, and a line moved far ahead costs at
-most itself (the vectors it jumped over pass it, and it is released after them).  Memory: per
-entity, its vectors within the window.  Deterministic: releases follow the input, and at its end
-time (then input order).
+it.  So a file in order within the window loses nothing, a line moved far ahead loses nothing
+(the vectors it jumped over pass it; it is released after them), and one moved far back only
+itself.  Memory: per entity, its vectors within the window and its newest time.  Deterministic:
+releases follow the input, and at its end time (then input order).
 
 ``run`` stays strict: holding every vector until its entity's time has moved on by the window
 would delay every alert by ``allowed_lateness_seconds``; a topic keyed by entity keeps each

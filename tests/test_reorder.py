@@ -136,7 +136,7 @@ def test_a_reverse_ordered_file_within_the_window_gives_the_sorted_files_events(
     assert "5,996 vectors arrived behind their entity's newest and were put back in time order" in summary.format()
 
 
-def test_one_line_moved_far_ahead_costs_at_most_itself(incident_lines, tmp_path):
+def test_two_swapped_lines_cost_at_most_the_one_moved_back(incident_lines, tmp_path):
     """Lines 2001 and 2101 swapped: the later vector (booking-api-1, 25 of its 30 s steps ahead) used to
     make the 24 of its entity's vectors between them and the displaced one older than its last accepted
     time, 25 refused; now they pass it, and only the displaced one (660 s behind by then) is refused."""
@@ -197,3 +197,11 @@ def test_engine_keeps_the_first_refusal_and_the_largest_gap():
     assert (same.last_ts, same.ts) == (TS + 30, TS + 30)
     assert (engine.counts.rejected_out_of_order, engine.counts.rejected_duplicate_ts) == (2, 1)
     assert np.isfinite(late.largest_gap)
+
+
+def test_a_line_moved_far_ahead_costs_nothing(incident_lines, tmp_path):
+    """Line 2101 moved to 2001 (25 of its entity's steps early): used to cost the 25 it jumped over."""
+    lines = list(incident_lines)
+    lines.insert(2000, lines.pop(2100))
+    summary, _, dead = run(write(tmp_path / "ahead.jsonl", lines), tmp_path)
+    assert (summary.vectors, summary.rejected, dead) == (6000, 0, [])
