@@ -50,8 +50,9 @@ def env(monkeypatch):
 # =================================================================================================
 #: modules that deserialise arbitrary objects or import code by name
 BANNED_MODULES = {"pickle", "cPickle", "_pickle", "cloudpickle", "dill", "joblib", "marshal", "shelve", "importlib"}
-#: importlib.resources is allowed to locate package data: resources.files("<literal package>") only
-ALLOWED_SUBMODULES = {"importlib.resources"}
+#: importlib.resources is allowed to locate package data: resources.files("<literal package>") only;
+#: importlib.metadata reads the installed distribution's metadata (`--version`) and loads no code
+ALLOWED_SUBMODULES = {"importlib.resources", "importlib.metadata"}
 BANNED_CALLS = {"eval", "exec", "compile", "__import__"}
 BANNED_ATTRIBUTE_CALLS = {
     ("os", "system"), ("os", "popen"), ("subprocess", "getoutput"), ("subprocess", "getstatusoutput"),
@@ -128,10 +129,14 @@ def test_no_pickle_eval_dynamic_import_or_shell_in_the_packages():
 
 
 def test_importlib_resources_is_used_only_to_locate_package_data():
-    # the one allowed use (stream/demo.py: the bundled replay_data files); without any, ban it too
+    # the allowed uses: stream/demo.py locates the bundled replay_data files, stream/cli.py reads the
+    # installed version (importlib.metadata); without them, ban importlib too
     users = [f for f in _package_files() if "importlib" in f.read_text(encoding="utf-8")]
-    assert [f.relative_to(ROOT).as_posix() for f in users] == ["stream/demo.py"]
+    assert [f.relative_to(ROOT).as_posix() for f in users] == ["stream/cli.py", "stream/demo.py"]
     assert 'resources.files("shiftsieve.replay_data")' in (ROOT / "stream" / "demo.py").read_text()
+    cli = (ROOT / "stream" / "cli.py").read_text()
+    assert [line.strip() for line in cli.splitlines() if "importlib" in line] == \
+        ["from importlib.metadata import PackageNotFoundError, version"]
 
 
 @pytest.mark.parametrize("snippet", [
