@@ -18,9 +18,17 @@ one-line ``shiftsieve: error: ...`` on stderr and exit status 2, never a traceba
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 
 import orjson
+
+# One BLAS thread unless the user chose otherwise, set before the imports below bring in numpy: the
+# models' matrices are small (tens to hundreds of metrics), and OpenBLAS's threads cost far more than
+# they give there (the report's PCP comparison: 7-13 s per method with its threads, 0.25 s with one,
+# on 2 cores). The container image sets the same (deploy/Dockerfile).
+for _name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_name, "1")
 
 from .config import ENCODINGS, ConfigError, load_config, render
 from .coverage import print_notes

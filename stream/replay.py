@@ -88,7 +88,7 @@ class ReplaySummary:
                 f"{_count(self.incidents, 'incident')} ({_count(self.events, 'event')}) in {self.seconds:.2f} s "
                 f"({self.rate:,.0f} vectors/s)")
         if self.rejected:
-            line += f"; {self.rejected} lines rejected ({reasons})"
+            line += f"; {_count(self.rejected, 'line')} rejected ({reasons})"
         if self.solver_unconverged:   # tolerance not reached within model.max_iter: worth knowing
             line += f"; solver: {self.solver_unconverged} vectors stopped at max_iter"
         if self.rewarmed:
