@@ -160,12 +160,12 @@ class Engine:
         pending = record.pending
         if not pending:   # once per batch, not per vector: batches are how recency is counted
             self.registry.touch(record)
-            if record.first_ts is None:
-                record.first_ts = vector.ts
         last = self._newest(record)
         refused = order_refusal(vector.ts, last)
         if refused is not None:   # a step twice or backwards would corrupt the baseline
             return self._refuse_order(refused, vector, last)
+        if not pending and record.first_ts is None:
+            record.first_ts = vector.ts
         pending.append(vector)
         self.queued += 1
         if len(pending) >= self.batch_size:
