@@ -131,7 +131,7 @@ def test_invalid_values_are_counted_in_the_summary_and_dead_lettered_as_kept(tmp
     _write_jsonl(src, rows, extra_lines=[bad, "{not json"])
     assert main(["replay", str(src), "--events", str(tmp_path / "ev.jsonl"), "--dead-letter", str(dead)]) == 0
     err = capsys.readouterr().err
-    assert "31 vectors" in err and "1 lines rejected (bad_json 1)" in err
+    assert "31 vectors" in err and "1 line rejected (bad_json 1)" in err
     assert "3 values invalid and treated as missing (not_a_number 2, numeric_string 1)" in err
     assert "the producer should send JSON numbers" in err
     # The rejection is written at once, the kept line when its vector is released by the reordering window.
